@@ -1,0 +1,23 @@
+#!/usr/bin/env bash
+# Installs the Debian packages that tests and the plugin build need.
+# lilv-utils: lv2ls, lv2info, lv2apply (the reference LV2 host tools)
+# lv2-dev: LV2 headers and lv2_validate; sordi: RDF parser lv2_validate calls
+set -euo pipefail
+needed=(lilv-utils lv2-dev sordi)
+missing=()
+for pkg in "${needed[@]}"; do
+  dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed" || missing+=("$pkg")
+done
+[ ${#missing[@]} -eq 0 ] && exit 0
+if [ "$(id -u)" -eq 0 ]; then
+  echo "Installing Debian packages: ${missing[*]}"
+  export DEBIAN_FRONTEND=noninteractive
+  apt-get update -qq
+  apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null
+elif command -v sudo >/dev/null 2>&1 && sudo -n true 2>/dev/null; then
+  sudo DEBIAN_FRONTEND=noninteractive apt-get update -qq
+  sudo DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null
+else
+  echo "Missing Debian packages: ${missing[*]} (install them with apt-get as root);"
+  echo "the LV2 plugin tests will be skipped until they are present."
+fi
