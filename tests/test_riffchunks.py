@@ -1,0 +1,248 @@
+"""Tests for liftmag.riffchunks against the RIFF, BWF and RF64 specifications.
+
+Sources:
+* RIFF: Microsoft/IBM, "Multimedia Programming Interface and Data Specifications 1.0"
+  (1991): chunk = id, 32-bit LE size, payload, pad byte after an odd payload; the RIFF
+  chunk's size counts everything after its own 8-byte header (file size - 8).
+* BWF: EBU Tech 3285 v2 (2011), the BROADCAST_EXT struct: Description 256, Originator 32,
+  OriginatorReference 32, OriginationDate 10, OriginationTime 8, TimeReferenceLow/High
+  uint32, Version uint16, UMID 64, five loudness words, Reserved 180, CodingHistory.
+* RF64: EBU Tech 3306 (2009): 'RF64' header with size 0xFFFFFFFF, first chunk 'ds64'
+  holding riffSize, dataSize, sampleCount as uint64.
+"""
+
+from __future__ import annotations
+
+import struct
+import wave
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from liftmag import riffchunks as rc
+
+RATE_HZ = 48_000
+# 2 * 2**32 + 12345 samples: exercises the High word of TimeReference.
+TIME_REFERENCE_SAMPLES = 2 * 2**32 + 12_345
+
+
+def hand_packed_bext(time_reference_samples: int = TIME_REFERENCE_SAMPLES) -> bytes:
+    """A bext payload packed field by field from the EBU Tech 3285 v2 table."""
+    fields = [
+        b"Scene 12 take 3".ljust(256, b"\0"),  # Description, 256 bytes
+        b"liftmag-test".ljust(32, b"\0"),  # Originator, 32
+        b"REF0001".ljust(32, b"\0"),  # OriginatorReference, 32
+        b"2024-05-17",  # OriginationDate, 10 (yyyy-mm-dd)
+        b"14:03:59",  # OriginationTime, 8 (hh:mm:ss)
+        struct.pack("<I", time_reference_samples & 0xFFFFFFFF),  # TimeReferenceLow
+        struct.pack("<I", time_reference_samples >> 32),  # TimeReferenceHigh
+        struct.pack("<H", 2),  # Version
+        bytes(range(64)),  # UMID, 64
+        # Loudness words are value x 100 (EBU Tech 3285 v2 section 2.4); -23.00 LUFS etc.
+        struct.pack("<5h", -2300, 450, -150, -1800, -2000),
+        b"\0" * 180,  # Reserved
+        b"A=PCM,F=48000,W=24,M=stereo,T=test\r\n",  # CodingHistory (EBU R 98 row)
+    ]
+    return b"".join(fields)
+
+
+IXML = b'<?xml version="1.0" encoding="UTF-8"?>\n<BWFXML><PROJECT>p</PROJECT></BWFXML>\n'
+
+
+def signal(frames: int = 1001, channels: int = 2) -> np.ndarray:
+    t = np.arange(frames) / RATE_HZ
+    return np.stack([0.5 * np.sin(2 * np.pi * 440.0 * (c + 1) * t) for c in range(channels)], 1)
+
+
+@pytest.fixture
+def plain_wav(tmp_path: Path) -> Path:
+    path = tmp_path / "plain.wav"
+    sf.write(path, signal(), RATE_HZ, subtype="PCM_24")
+    return path
+
+
+@pytest.fixture
+def bwf(tmp_path: Path, plain_wav: Path) -> Path:
+    path = tmp_path / "take.wav"
+    rc.copy_with_chunks(plain_wav, path, [("bext", hand_packed_bext()), ("iXML", IXML)])
+    return path
+
+
+def test_inserted_chunks_sit_before_data_and_read_back_byte_for_byte(bwf: Path) -> None:
+    ids = [c.chunk_id for c in rc.list_chunks(bwf)]
+    assert ids == ["fmt ", "bext", "iXML", "data"]
+    assert rc.read_bext(bwf) == hand_packed_bext()
+    assert rc.read_ixml(bwf) == IXML
+    assert rc.chunks_to_carry(bwf) == (("bext", hand_packed_bext()), ("iXML", IXML))
+
+
+def test_riff_size_is_file_size_minus_8(bwf: Path) -> None:
+    # RIFF 1.0 (Microsoft/IBM 1991): the RIFF ckSize covers everything after its header.
+    raw = bwf.read_bytes()
+    assert raw[:4] == b"RIFF"
+    assert struct.unpack("<I", raw[4:8])[0] == len(raw) - 8
+
+
+def test_odd_payload_gets_a_pad_byte(bwf: Path) -> None:
+    # RIFF 1.0: an odd-sized payload is followed by one pad byte, not counted in ckSize.
+    assert len(IXML) % 2 == 1
+    chunks = {c.chunk_id: c for c in rc.list_chunks(bwf)}
+    ixml, data = chunks["iXML"], chunks["data"]
+    assert data.offset == ixml.offset + 8 + len(IXML) + 1
+    assert bwf.read_bytes()[ixml.offset + 8 + len(IXML)] == 0
+
+
+def test_time_reference_at_the_spec_offset(bwf: Path) -> None:
+    # EBU Tech 3285: TimeReferenceLow follows 256+32+32+10+8 = 338 bytes of text fields.
+    payload = rc.read_bext(bwf)
+    assert payload is not None
+    low, high = struct.unpack_from("<II", payload, 338)
+    assert (high << 32) | low == TIME_REFERENCE_SAMPLES
+    assert rc.parse_bext(payload).time_reference_samples == TIME_REFERENCE_SAMPLES
+
+
+def test_parse_bext_fields() -> None:
+    info = rc.parse_bext(hand_packed_bext())
+    assert info.description == "Scene 12 take 3"
+    assert info.originator == "liftmag-test"
+    assert info.originator_reference == "REF0001"
+    assert info.origination_date == "2024-05-17"
+    assert info.origination_time == "14:03:59"
+    assert info.version == 2
+    assert info.umid == bytes(range(64))
+    assert info.loudness_value_lufs == -23.0
+    assert info.loudness_range_lu == 4.5
+    assert info.max_true_peak_level_dbtp == -1.5
+    assert info.coding_history == "A=PCM,F=48000,W=24,M=stereo,T=test\r\n"
+
+
+def test_version_1_bext_has_no_loudness() -> None:
+    payload = bytearray(hand_packed_bext())
+    struct.pack_into("<H", payload, 346, 1)  # Version sits after the two uint32 words
+    assert rc.parse_bext(bytes(payload)).loudness_value_lufs is None
+
+
+def test_short_bext_is_refused() -> None:
+    with pytest.raises(ValueError, match="602"):
+        rc.parse_bext(b"\0" * 601)
+
+
+def test_copy_keeps_audio_for_independent_readers(plain_wav: Path, bwf: Path) -> None:
+    # libsndfile and Python's own wave module (independent RIFF reader) both see the audio.
+    original, _ = sf.read(plain_wav)
+    copied, rate_hz = sf.read(bwf)
+    assert rate_hz == RATE_HZ
+    np.testing.assert_array_equal(copied, original)
+    with wave.open(str(plain_wav)) as a, wave.open(str(bwf)) as b:
+        assert b.getnframes() == a.getnframes() == 1001
+        assert b.readframes(1001) == a.readframes(1001)
+
+
+def test_inserting_again_replaces_rather_than_duplicates(tmp_path: Path, bwf: Path) -> None:
+    out = tmp_path / "again.wav"
+    new_bext = hand_packed_bext(time_reference_samples=96_000)
+    rc.copy_with_chunks(bwf, out, [("bext", new_bext)])
+    ids = [c.chunk_id for c in rc.list_chunks(out)]
+    assert ids.count("bext") == 1
+    assert rc.parse_bext(rc.read_bext(out) or b"").time_reference_samples == 96_000
+    assert rc.read_ixml(out) == IXML
+
+
+def test_data_is_streamed_in_blocks(
+    tmp_path: Path, plain_wav: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(rc, "_COPY_BLOCK_BYTES", 7)  # many small, odd-sized blocks
+    out = tmp_path / "blocks.wav"
+    rc.copy_with_chunks(plain_wav, out, [("iXML", IXML)])
+    data_in = next(c for c in rc.list_chunks(plain_wav) if c.chunk_id == "data")
+    data_out = next(c for c in rc.list_chunks(out) if c.chunk_id == "data")
+    raw_in, raw_out = plain_wav.read_bytes(), out.read_bytes()
+    assert (
+        raw_out[data_out.payload_offset : data_out.payload_offset + data_out.size]
+        == raw_in[data_in.payload_offset : data_in.payload_offset + data_in.size]
+    )
+
+
+def test_rf64_ds64_size_is_fixed(tmp_path: Path) -> None:
+    src, out = tmp_path / "big.wav", tmp_path / "big_bwf.wav"
+    sf.write(src, signal(), RATE_HZ, format="RF64", subtype="PCM_24")
+    rc.copy_with_chunks(src, out, [("bext", hand_packed_bext()), ("iXML", IXML)])
+    raw = out.read_bytes()
+    # EBU Tech 3306: RF64 header size is 0xFFFFFFFF; ds64 riffSize (uint64 at byte 20)
+    # holds the real file size - 8.
+    assert raw[:4] == b"RF64" and raw[12:16] == b"ds64"
+    assert struct.unpack_from("<I", raw, 4)[0] == 0xFFFFFFFF
+    assert struct.unpack_from("<Q", raw, 20)[0] == len(raw) - 8
+    assert rc.read_bext(out) == hand_packed_bext()
+    assert rc.read_ixml(out) == IXML
+    np.testing.assert_array_equal(sf.read(out)[0], sf.read(src)[0])
+
+
+@pytest.mark.parametrize(
+    ("fmt", "ext"), [("FLAC", "flac"), ("AIFF", "aiff"), ("W64", "w64"), ("CAF", "caf")]
+)
+def test_non_wave_files_have_nothing_to_carry(tmp_path: Path, fmt: str, ext: str) -> None:
+    path = tmp_path / f"x.{ext}"
+    sf.write(path, signal(), RATE_HZ, format=fmt, subtype="PCM_24")
+    assert not rc.is_wave_file(path)
+    assert rc.chunks_to_carry(path) == ()
+    with pytest.raises(ValueError, match="not a RIFF/RF64 WAVE"):
+        rc.list_chunks(path)
+
+
+def test_truncated_file_is_refused(tmp_path: Path, bwf: Path) -> None:
+    cut = tmp_path / "cut.wav"
+    cut.write_bytes(bwf.read_bytes()[:-100])
+    with pytest.raises(ValueError, match="truncated"):
+        rc.list_chunks(cut)
+
+
+def test_chunk_size_past_end_is_refused(tmp_path: Path, bwf: Path) -> None:
+    raw = bytearray(bwf.read_bytes())
+    ixml = next(c for c in rc.list_chunks(bwf) if c.chunk_id == "iXML")
+    struct.pack_into("<I", raw, ixml.offset + 4, 0x7FFFFFF0)
+    bad = tmp_path / "bad.wav"
+    bad.write_bytes(bytes(raw))
+    with pytest.raises(ValueError, match=r"'iXML' at byte \d+ claims"):
+        rc.list_chunks(bad)
+
+
+def test_tiny_and_foreign_files_are_refused(tmp_path: Path) -> None:
+    tiny = tmp_path / "tiny.wav"
+    tiny.write_bytes(b"RIFF\x04\x00")
+    with pytest.raises(ValueError, match="too short"):
+        rc.list_chunks(tiny)
+    avi = tmp_path / "movie.avi"
+    avi.write_bytes(b"RIFF\x04\x00\x00\x00AVI ")
+    with pytest.raises(ValueError, match="not a RIFF/RF64 WAVE"):
+        rc.list_chunks(avi)
+
+
+def test_bad_chunk_ids_are_refused(tmp_path: Path, plain_wav: Path) -> None:
+    for chunk_id in ("bex", "data", "bëxt"):
+        with pytest.raises(ValueError, match="chunk"):
+            rc.copy_with_chunks(plain_wav, tmp_path / "o.wav", [(chunk_id, b"")])
+
+
+@settings(
+    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(cut=st.integers(0, 4000), byte=st.integers(0, 255), at=st.integers(0, 4000))
+def test_damaged_files_give_value_error_or_parse(
+    tmp_path: Path, bwf: Path, cut: int, byte: int, at: int
+) -> None:
+    # Any truncation or single-byte corruption must end in a result or a ValueError,
+    # never another exception or an endless loop.
+    raw = bytearray(bwf.read_bytes())
+    raw[at % len(raw)] = byte
+    damaged = tmp_path / "damaged.wav"
+    kept = bytes(raw[: len(raw) - cut % len(raw)])
+    damaged.write_bytes(kept)
+    try:
+        chunks = rc.list_chunks(damaged)
+    except ValueError:
+        return
+    assert all(c.offset + 8 + c.size <= len(kept) for c in chunks)
