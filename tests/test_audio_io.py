@@ -329,3 +329,22 @@ def test_write_checks_shape_and_values(tmp_path: Path) -> None:
     with pytest.raises(ValueError, match="does not resample"):
         AtomicAudioWriter(tmp_path / "c.wav", like=probe(write(tmp_path / "in.wav", tone(9, 2))),
                           sample_rate_hz=44_100)
+
+
+def test_truncated_inputs_give_clear_errors(tmp_path: Path, bwf: Path) -> None:
+    raw = bwf.read_bytes()
+    header_only = tmp_path / "header_only.wav"
+    header_only.write_bytes(raw[:40])
+    with pytest.raises(AudioInputError, match="libsndfile says"):
+        probe(header_only)
+    # libsndfile reads what is left of a cut data chunk, but the chunk walk refuses to
+    # carry chunks out of a file whose RIFF size (RIFF 1.0) exceeds what is on disk.
+    cut = tmp_path / "cut.wav"
+    cut.write_bytes(raw[: len(raw) - 1000])
+    info = probe(cut)
+    assert info.frames < 4801
+    with pytest.raises(AudioInputError, match="truncated"):
+        AtomicAudioWriter(tmp_path / "out.wav", like=info)
+    with AtomicAudioWriter(tmp_path / "out.wav", like=info, carry_chunks=False) as writer:
+        writer.write(np.zeros((2, 3)))
+    assert writer.report is not None and writer.report.carried_chunks == ()
