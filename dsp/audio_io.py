@@ -22,6 +22,7 @@ from types import TracebackType
 
 import numpy as np
 import soundfile as sf
+
 from liftmag import riffchunks
 
 __all__ = [

@@ -31,8 +31,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from liftmag.lift import lift_snapshots, rho
 from numpy.typing import ArrayLike, NDArray
+
+from liftmag.lift import lift_snapshots, rho
 
 # ----------------------------------------------------------------------------- helpers
 

@@ -139,18 +139,31 @@ class MomentAccumulator:
         self.lift_sum = np.zeros((n_bins, d, d)) if with_lift else None
         self.weight = np.zeros(n_bins)
         self.weight_sq = np.zeros(n_bins)
+        self.version = 0  # bumped by every change, so derived values can be cached
 
     def update(self, y: NDArray[np.complex128], weight: NDArray, forgetting: float) -> None:
-        """Add snapshots ``y`` (F, M) with per-bin weights, after forgetting by ``forgetting``."""
-        w = np.broadcast_to(np.asarray(weight, dtype=float), self.weight.shape)
-        self.cov_sum *= forgetting
-        self.cov_sum += w[:, None, None] * (y[:, :, None] * np.conj(y[:, None, :]))
+        """Add frames ``y`` (K, F, M) or one frame (F, M) with weights (K, F), (F,) or scalar.
+
+        Equivalent to K sequential updates ``S <- forgetting * S + w_k x_k``, computed at once
+        as ``forgetting^K S + sum_k forgetting^(K-1-k) w_k x_k``.
+        """
+        y = np.asarray(y)
+        if y.ndim == 2:
+            y = y[None]
+        k_frames, n_bins = y.shape[:2]
+        w = np.broadcast_to(np.asarray(weight, dtype=float), (k_frames, n_bins))
+        decay = forgetting ** np.arange(k_frames - 1, -1, -1, dtype=float)
+        wd = w * decay[:, None]
+        keep = forgetting**k_frames
+        self.cov_sum *= keep
+        self.cov_sum += np.einsum("kf,kfi,kfj->fij", wd, y, np.conj(y))
         if self.lift_sum is not None:
             r = lift_snapshots(y)
-            self.lift_sum *= forgetting
-            self.lift_sum += w[:, None, None] * (r[:, :, None] * r[:, None, :])
-        self.weight = forgetting * self.weight + w
-        self.weight_sq = forgetting**2 * self.weight_sq + w**2
+            self.lift_sum *= keep
+            self.lift_sum += np.einsum("kf,kfi,kfj->fij", wd, r, r)
+        self.weight = keep * self.weight + wd.sum(axis=0)
+        self.weight_sq = keep**2 * self.weight_sq + (wd**2).sum(axis=0)
+        self.version += 1
 
     def seed(self, model: NoiseModel) -> None:
         """Start from a model, counting it as ``model.frames`` frames of evidence."""
@@ -160,6 +173,7 @@ class MomentAccumulator:
             self.lift_sum = model.lift_second_moment * n
         self.weight = np.full(self.weight.shape, n)
         self.weight_sq = np.full(self.weight.shape, n)
+        self.version += 1
 
     def means(self) -> tuple[NDArray[np.complex128], NDArray[np.float64] | None]:
         w = np.maximum(self.weight, 1e-300)

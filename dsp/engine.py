@@ -1,0 +1,683 @@
+"""The streaming engine: one ``Processor`` for the CLI, the plugin and the tests.
+
+Blocks of any size go in, blocks of the same size come out, delayed by a fixed latency of
+``frame_length - 1`` samples (:attr:`Processor.latency_samples`); the output does not
+depend on how the input was cut into blocks. :func:`process_array` is the same engine
+with the latency trimmed, so its output is sample-aligned with its input.
+
+Per STFT frame and bin (all bins at once):
+
+1. whiten the snapshot with the noise covariance, ``y~ = L^-1 y`` (``Phi_v = L L^H``);
+2. form the MVDR output ``z`` and its residual noise power ``sigma_r^2``;
+3. track the noise (speech-presence probability with a fixed a-priori SNR, Gerkmann &
+   Hendriks 2012, applied to the MVDR output) and the noisy-speech covariance used to
+   find the talker's RTF by covariance whitening (Markovich-Golan & Gannot 2015);
+4. estimate the speech power with the chosen estimator, as an unbiased estimate ``P^``
+   plus its noise-equivalent power ``sigma_eq^2`` (or an already-shrunk MMSE estimate);
+5. the shared post-stage: decision-directed prior (Ephraim & Malah 1984), Wiener gain,
+   output power ``G^2 (P^ + sigma_eq^2)``, reduction limit, phase from the MVDR output or
+   the reference channel;
+6. overlap-add synthesis of the chosen output (cleaned, keep-image, taken-out).
+
+Derived quantities (whitening, RTF, MVDR weights, lifted transforms) are refreshed every
+``REFRESH_S`` seconds of frames, at frame indices fixed by the stream, not by the blocks.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+from liftmag.estimators import (
+    lifted_affine_weights,
+    lifted_nulls_weights,
+    lifted_wiener_weights,
+    outer,
+    quadratic_wiener_fixed_weights,
+)
+from liftmag.geometry import linear_array_m, steering_vectors
+from liftmag.lift import (
+    crossterm_lift_covariance,
+    gaussian_lift_covariance,
+    lift_dimension,
+    lift_snapshots,
+    rho,
+)
+from liftmag.noise import (
+    MomentAccumulator,
+    NoiseModel,
+    shrunk_lift_covariance,
+    spiked_lift_covariance,
+    whitened_lift_covariance,
+)
+from liftmag.settings import Settings
+from liftmag.stft import StftConfig, StreamingStft, stft_config
+
+REFRESH_S = 1.0  # how often derived quantities (whitening, RTF, lifted weights) are renewed
+INITIAL_NOISE_S = 0.25  # a take without a noise model is assumed to start with room tone
+SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann & Hendriks)
+MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
+MIN_SPEECH_FRAMES = 8.0  # speech evidence needed before the RTF is taken from data
+ABSOLUTE_POWER_FLOOR = 1e-20  # keeps digital silence from making singular covariances
+
+SHRUNK_ESTIMATORS = ("lifted-wiener", "lifted-affine", "lifted-wiener-fixed")
+
+
+@dataclass
+class EngineReport:
+    """What the engine did, for summaries: counts and per-bin usage of the lift."""
+
+    frames: int = 0
+    lifted_bin_frames: int = 0
+    bin_frames: int = 0
+    spikes_per_bin: NDArray | None = None
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def lifted_fraction(self) -> float:
+        return self.lifted_bin_frames / self.bin_frames if self.bin_frames else 0.0
+
+
+@dataclass(frozen=True)
+class _Derived:
+    """Per-bin quantities recomputed at each refresh."""
+
+    whitener: NDArray  # (F, M, M) L^-1
+    g: NDArray  # (F, M) RTF, g_ref = 1
+    g_white: NDArray  # (F, M)
+    residual: NDArray  # (F,) MVDR residual noise power
+    lifted: dict  # estimator-specific arrays
+
+
+def _chol_inverse(phi: NDArray, loading: float) -> tuple[NDArray, NDArray]:
+    """Cholesky factor ``L`` of the loaded covariance and its inverse, per bin."""
+    m = phi.shape[-1]
+    scale = np.real(np.trace(phi, axis1=-2, axis2=-1)) / m
+    scale = np.maximum(scale, ABSOLUTE_POWER_FLOOR)
+    loaded = phi + (loading * scale + ABSOLUTE_POWER_FLOOR)[:, None, None] * np.eye(m)
+    chol = np.linalg.cholesky(loaded)
+    inv = np.linalg.inv(chol)
+    return chol, inv
+
+
+def _rtf_from_data(
+    speech_cov: NDArray, chol: NDArray, inv: NDArray, reference: int, fallback: NDArray
+) -> NDArray:
+    """RTF by covariance whitening: principal eigenvector of ``L^-1 Phi_y L^-H``, mapped back.
+
+    Bins whose whitened principal eigenvalue is below 2 (speech not clearly above the noise)
+    keep ``fallback``.
+    """
+    white = inv @ speech_cov @ np.conj(np.swapaxes(inv, -1, -2))
+    white = (white + np.conj(np.swapaxes(white, -1, -2))) / 2
+    lam, vec = np.linalg.eigh(white)
+    g = np.einsum("fij,fj->fi", chol, vec[:, :, -1])
+    ref = g[:, reference]
+    ok = (lam[:, -1] > 2.0) & (np.abs(ref) > 1e-6 * np.linalg.norm(g, axis=-1))
+    g = np.where(ok[:, None], g / np.where(ok, ref, 1.0)[:, None], fallback)
+    return g
+
+
+class Processor:
+    """Streaming multichannel dialogue cleaner.
+
+    Parameters
+    ----------
+    settings : Settings
+    sample_rate_hz : float
+    n_channels : int           microphones (2 or more)
+    noise_model : NoiseModel, optional
+        Learned noise statistics. With ``settings.noise_mode == "hold"`` they are used as
+        they are; with ``"track"`` the tracker starts from them and keeps learning in
+        speech pauses; with ``"learn"`` every frame is treated as noise.
+    """
+
+    def __init__(
+        self,
+        settings: Settings,
+        sample_rate_hz: float,
+        n_channels: int,
+        noise_model: NoiseModel | None = None,
+    ) -> None:
+        if int(n_channels) != n_channels or n_channels < 2:
+            raise ValueError(
+                f"liftmag needs two or more microphones, got {n_channels} channel(s): the "
+                "estimators compare the channels to tell the talker from the noise"
+            )
+        self.n_channels = int(n_channels)
+        self.sample_rate_hz = float(sample_rate_hz)
+        self._init_stream(settings)
+        if noise_model is not None:
+            self.set_noise_model(noise_model)
+
+    # ------------------------------------------------------------------ set-up and state
+
+    def _init_stream(self, settings: Settings) -> None:
+        if settings.reference_channel >= self.n_channels:
+            raise ValueError(
+                f"reference channel {settings.reference_channel} does not exist in a "
+                f"{self.n_channels}-channel take (channels are counted from 0)"
+            )
+        self.settings = settings
+        self.config: StftConfig = stft_config(self.sample_rate_hz, settings.frame_s)
+        cfg = self.config
+        self.n_output_channels = self.n_channels if settings.output_mode == "keep-image" else 1
+        self.latency_samples = cfg.latency_samples
+        self._stft = StreamingStft(cfg, self.n_channels, self.n_output_channels)
+        self._fifo = np.zeros((self.n_output_channels, cfg.hop - 1))
+        f, m = cfg.n_bins, self.n_channels
+        self._noise = MomentAccumulator(f, m, with_lift=True)
+        self._speech = MomentAccumulator(f, m, with_lift=False)
+        self._frame_index = 0
+        self._refresh_frames = max(1, round(REFRESH_S / cfg.hop_s))
+        self._initial_frames = max(1, round(INITIAL_NOISE_S / cfg.hop_s))
+        self._noise_forgetting = float(np.exp(-cfg.hop_s / settings.noise_memory_s))
+        self._speech_forgetting = float(np.exp(-cfg.hop_s / settings.speech_memory_s))
+        self._prev_amp_sq = np.zeros(f)
+        self._spp_smooth = np.zeros(f)
+        self._model_frames = 0.0
+        self.report = EngineReport(spikes_per_bin=np.zeros(f, dtype=int))
+        self._geometry_g, self._null_w = self._geometry()
+        self._derived: _Derived | None = None
+        self._noise_cache_key: tuple | None = None
+        self._noise_cache: tuple = ()
+
+    def _geometry(self) -> tuple[NDArray | None, NDArray | None]:
+        s = self.settings
+        if s.mic_spacing_m is None:
+            return None, None
+        positions = linear_array_m(self.n_channels, s.mic_spacing_m)
+        freqs = self.config.frequencies_hz
+        g = None
+        if s.target_deg is not None:
+            g = steering_vectors(positions, s.target_deg, freqs, reference=s.reference_channel)
+        null_w = None
+        if s.estimator == "lifted-nulls":
+            target = g if g is not None else steering_vectors(
+                positions, 90.0, freqs, reference=s.reference_channel
+            )
+            d = steering_vectors(positions, np.asarray(s.null_deg), freqs,
+                                 reference=s.reference_channel)
+            # DC cannot hold distinct nulls (all steering vectors coincide): leave bin 0 open.
+            null_w = np.zeros((len(freqs), lift_dimension(self.n_channels)))
+            null_w[0] = rho(outer(target[0]))
+            null_w[1:] = lifted_nulls_weights(target[1:], d[1:])
+        return g, null_w
+
+    def update_settings(self, settings: Settings) -> None:
+        """Apply new settings. The state is kept unless the STFT geometry, channel layout or
+        output channel count changes, in which case the stream restarts (noise model kept)."""
+        old = self.settings
+        structural = (
+            settings.frame_s != old.frame_s
+            or settings.output_mode != old.output_mode
+            or settings.reference_channel != old.reference_channel
+        )
+        if structural:
+            model = self.noise_model() if self._noise.weight.max() > 0 else None
+            self._init_stream(settings)
+            if model is not None:
+                self.set_noise_model(model)
+            return
+        self.settings = settings
+        self._noise_forgetting = float(np.exp(-self.config.hop_s / settings.noise_memory_s))
+        self._speech_forgetting = float(np.exp(-self.config.hop_s / settings.speech_memory_s))
+        self._geometry_g, self._null_w = self._geometry()
+        self._derived = None  # recompute at the next frame
+
+    def noise_model(self) -> NoiseModel:
+        """Snapshot of the current noise statistics as a reusable model."""
+        cov, lift2 = self._noise.means()
+        cfg = self.config
+        return NoiseModel(
+            covariance=cov, lift_second_moment=lift2,
+            frames=float(np.median(self._noise.effective_frames())),
+            sample_rate_hz=cfg.sample_rate_hz, frame_length=cfg.frame_length, hop=cfg.hop,
+            n_channels=self.n_channels, description="snapshot of a running liftmag engine",
+        )
+
+    def set_noise_model(self, model: NoiseModel) -> None:
+        """Replace the noise statistics by a learned model (refuses a mismatched one)."""
+        problem = model.mismatch(
+            self.sample_rate_hz, self.config.frame_length, self.config.hop, self.n_channels
+        )
+        if problem:
+            raise ValueError(problem)
+        self._noise.seed(model)
+        self._model_frames = model.frames
+        self._derived = None
+
+    # --------------------------------------------------------------------- processing
+
+    def push(self, block: NDArray) -> NDArray[np.float64]:
+        """Process ``(n_channels, n)`` samples; return ``(n_output_channels, n)`` samples."""
+        x = np.asarray(block, dtype=float)
+        if x.ndim != 2 or x.shape[0] != self.n_channels:
+            raise ValueError(
+                f"expected a block shaped ({self.n_channels}, n), got {x.shape}"
+            )
+        if not np.all(np.isfinite(x)):
+            raise ValueError("input block contains NaN or infinite samples")
+        spectra = np.swapaxes(self._stft.analyse(x), 1, 2)  # (frames, bins, channels)
+        if spectra.shape[0]:
+            out_spec = np.concatenate(
+                [self._process_batch(batch) for batch in self._batches(spectra)], axis=0
+            )
+            self._fifo = np.concatenate([self._fifo, self._stft.synthesise(out_spec)], axis=1)
+        n = x.shape[1]
+        out, self._fifo = self._fifo[:, :n], self._fifo[:, n:]
+        return out
+
+    def _batches(self, spectra: NDArray):
+        """Split frames where derived values are refreshed, so each batch shares them.
+
+        The split points depend only on frame indices, never on block boundaries.
+        """
+        start = 0
+        n0 = self._frame_index
+        total = spectra.shape[0]
+        while start < total:
+            n = n0 + start
+            if self._learning_start(n):
+                stop = start + 1
+            else:
+                to_refresh = self._refresh_frames - (n % self._refresh_frames)
+                stop = min(total, start + to_refresh)
+            yield spectra[start:stop]
+            start = stop
+
+    def _learning_start(self, frame_index: int) -> bool:
+        """True while a take without a noise model is learning its first room tone."""
+        return (
+            frame_index < self._initial_frames
+            and self._model_frames == 0
+            and self.settings.noise_mode != "hold"
+        )
+
+    def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
+        """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F)."""
+        s = self.settings
+        n = self._frame_index
+        learning = self._learning_start(n)
+        if learning:
+            self._noise.update(y[0], 1.0, 1.0)
+            self._derived = None
+        if self._derived is None or n % self._refresh_frames == 0:
+            self._derived = self._refresh()
+        der = self._derived
+        k_frames = y.shape[0]
+
+        yw = np.einsum("fij,kfj->kfi", der.whitener, y)
+        z = np.einsum("fi,kfi->kf", np.conj(der.g_white), yw) * der.residual
+        mvdr_power = np.abs(z) ** 2
+        p_lin = mvdr_power - der.residual
+        if not learning and s.estimator != "passthrough":
+            self._track(y, mvdr_power / np.maximum(der.residual, 1e-300))
+        self._frame_index += k_frames
+        self.report.frames += k_frames
+        self.report.bin_frames += p_lin.size
+
+        y_ref = y[:, :, s.reference_channel]
+        if s.bypass or s.estimator == "passthrough":
+            return self._output(y, y_ref, None)
+        if s.estimator == "mvdr":
+            return self._output(y, z, None)
+
+        phase_ref = z
+        est = s.estimator
+        lf = der.lifted
+        if est == "delay-sum":
+            phase_ref = np.einsum("fi,kfi->kf", np.conj(lf["h_ds"]), y)
+            p_unbiased = np.abs(phase_ref) ** 2 - lf["noise_ds"]
+        elif est == "lifted-nulls":
+            p_unbiased = np.einsum("fd,kfd->kf", self._null_w, lift_snapshots(y) - lf["mu_v_raw"])
+        else:
+            p_unbiased = p_lin
+        if est in ("auto", "lifted-mv"):
+            active = lf["active"]  # bins where the lift is used
+            mu_white = rho(np.eye(self.n_channels))
+            lifted_c = np.einsum(
+                "fij,kfj->kfi", lf["q"], lift_snapshots(yw[:, active]) - mu_white
+            )
+        amp = np.empty(p_lin.shape)
+        floor_snr = 10 ** (MIN_PRIOR_SNR_DB / 10)
+        for k in range(k_frames):  # the decision-directed prior is recursive in time
+            prior = np.maximum(
+                s.smoothing * self._prev_amp_sq + (1 - s.smoothing) * np.maximum(p_lin[k], 0.0),
+                floor_snr * der.residual,
+            )
+            if est in ("linear-wiener", "delay-sum"):
+                p_hat = p_unbiased[k]
+                noise_eq = der.residual if est == "linear-wiener" else lf["noise_ds"]
+            elif est in ("auto", "lifted-mv"):
+                p_hat = p_lin[k].copy()
+                noise_eq = der.residual.copy()
+                p_hat[active], noise_eq[active] = self._lifted_mv(lifted_c[k], prior[active], lf)
+                self.report.lifted_bin_frames += len(active)
+            elif est == "lifted-nulls":
+                var = lf["null_var_noise"] + prior * lf["null_var_cross"]
+                p_hat = p_unbiased[k]
+                noise_eq = np.sqrt(prior**2 + np.maximum(var, 0.0)) - prior
+                self.report.lifted_bin_frames += len(p_hat)
+            else:
+                p_hat = self._lifted_mmse(yw[k], prior, der, mvdr_power[k])
+                noise_eq = None
+                self.report.lifted_bin_frames += len(p_hat)
+            amp[k] = self._post_stage(p_hat, noise_eq)
+
+        floor = 10 ** (-s.reduction_limit_db / 20) * np.abs(y_ref)
+        ceiling = np.maximum(np.abs(y_ref), np.abs(phase_ref))
+        amp = np.clip(amp, floor, np.maximum(ceiling, floor))
+        phase_src = phase_ref if s.phase_source == "mvdr" else y_ref
+        magnitude = np.abs(phase_src)
+        unit = np.where(magnitude > 0, phase_src / np.maximum(magnitude, 1e-300), 1.0)
+        cleaned = amp * unit
+        return self._output(y, cleaned, amp / np.maximum(np.abs(y_ref), 1e-300))
+
+    def _output(
+        self, y: NDArray, cleaned: NDArray, gain: NDArray | None
+    ) -> NDArray[np.complex128]:
+        """Output spectra (K, n_out, F) for the output mode.
+
+        ``gain`` (K, F) is the cleaned magnitude over the reference magnitude, used by
+        keep-image; ``None`` means the estimator gives a spectrum but no gain (passthrough,
+        bypass, plain MVDR), in which case keep-image passes every channel through.
+        """
+        s = self.settings
+        y_ref = y[:, :, s.reference_channel]
+        if s.output_mode == "keep-image":
+            if gain is None:
+                return np.swapaxes(y, 1, 2).copy()
+            floor = 10 ** (-s.reduction_limit_db / 20)
+            return np.swapaxes(np.clip(gain, floor, 1.0)[:, :, None] * y, 1, 2)
+        if s.output_mode == "taken-out":
+            return (y_ref - cleaned)[:, None, :]
+        return cleaned[:, None, :]
+
+    def _post_stage(self, p_hat: NDArray, noise_eq: NDArray | None) -> NDArray:
+        """Shared post-stage: decision-directed prior, Wiener gain, output amplitude."""
+        s = self.settings
+        if noise_eq is None:  # MMSE estimators are already shrunk
+            amp_sq = np.maximum(p_hat, 0.0)
+        else:
+            lam = np.maximum(
+                s.smoothing * self._prev_amp_sq + (1 - s.smoothing) * np.maximum(p_hat, 0.0),
+                10 ** (MIN_PRIOR_SNR_DB / 10) * noise_eq,
+            )
+            gain = lam / np.maximum(lam + noise_eq, 1e-300)
+            # Wiener output power G^2 (P^ + sigma^2) = s P^ + lambda (sqrt(s) - s), s = G^2.
+            amp_sq = gain**2 * np.maximum(p_hat + noise_eq, 0.0)
+        self._prev_amp_sq = amp_sq
+        return np.sqrt(amp_sq)
+
+    def _track(self, y: NDArray, gamma: NDArray) -> None:
+        """Update noise and speech statistics from frames ``y`` (K, F, M).
+
+        ``gamma`` (K, F) is the MVDR a-posteriori SNR that drives the speech-presence
+        probability (fixed a-priori SNR, Gerkmann & Hendriks 2012).
+        """
+        s = self.settings
+        xi = 10 ** (SPEECH_PRIOR_SNR_DB / 10)
+        spp = 1.0 / (1.0 + (1.0 + xi) * np.exp(-np.minimum(gamma * xi / (1.0 + xi), 700.0)))
+        probability = np.empty_like(spp)
+        for k in range(y.shape[0]):  # recursive in time; cheap elementwise steps
+            self._spp_smooth = 0.9 * self._spp_smooth + 0.1 * spp[k]
+            # Cap a long-held presence so the noise estimate cannot stagnate.
+            probability[k] = np.where(self._spp_smooth > 0.99, np.minimum(spp[k], 0.99), spp[k])
+        if s.noise_mode == "track":
+            self._noise.update(y, 1.0 - probability, self._noise_forgetting)
+        elif s.noise_mode == "learn":
+            self._noise.update(y, 1.0, 1.0)
+        if s.target_deg is None:
+            self._speech.update(y, probability, self._speech_forgetting)
+
+    # ------------------------------------------------------------------ derived values
+
+    def _refresh(self) -> _Derived:
+        s = self.settings
+        cov, lift2 = self._noise.means()
+        m = self.n_channels
+        f = self.config.n_bins
+        if self._noise.weight.max() == 0:  # nothing learned yet: unit noise
+            cov = np.broadcast_to(np.eye(m), (f, m, m)).astype(complex)
+            lift2 = gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
+        chol, inv = _chol_inverse(cov, s.diagonal_loading)
+        fallback = np.ones((f, m), dtype=complex)
+        if self._geometry_g is not None:
+            g = self._geometry_g
+        elif self._speech.weight.min() >= MIN_SPEECH_FRAMES * (1 - self._speech_forgetting):
+            speech_cov, _ = self._speech.means()
+            previous = self._derived.g if self._derived is not None else fallback
+            g = _rtf_from_data(speech_cov, chol, inv, s.reference_channel, previous)
+        else:
+            g = self._derived.g if self._derived is not None else fallback
+        g_white = np.einsum("fij,fj->fi", inv, g)
+        residual = 1.0 / np.maximum(np.sum(np.abs(g_white) ** 2, axis=-1), 1e-300)
+        lifted: dict = {}
+        est = s.estimator
+        if est == "delay-sum":
+            h = g / np.sum(np.abs(g) ** 2, axis=-1, keepdims=True)
+            lifted["h_ds"] = h
+            lifted["noise_ds"] = np.real(np.einsum("fi,fij,fj->f", np.conj(h), cov, h))
+        elif est == "lifted-nulls":
+            w = self._null_w
+            lifted["mu_v_raw"] = rho(cov)
+            lifted["null_var_noise"] = np.einsum(
+                "fi,fij,fj->f", w, gaussian_lift_covariance(cov), w
+            )
+            lifted["null_var_cross"] = np.einsum(
+                "fi,fij,fj->f", w, crossterm_lift_covariance(g, cov), w
+            )
+        elif est not in ("linear-wiener", "mvdr", "passthrough"):
+            lifted.update(self._lifted_derived(cov, lift2, inv, g_white))
+        return _Derived(inv, g, g_white, residual, lifted)
+
+    def _lifted_derived(self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray):
+        s = self.settings
+        key = (self._noise.version, s.estimator, s.spike_threshold, s.diagonal_loading)
+        if self._noise_cache_key != key:  # the noise part only changes with the noise moments
+            n_eff = self._noise.effective_frames()
+            c_white = whitened_lift_covariance(cov, lift2, inv)
+            if s.estimator == "lifted-mv":
+                c_reg = shrunk_lift_covariance(c_white, n_eff)
+                n_spikes = np.zeros(len(n_eff), dtype=int)
+            else:
+                c_reg, n_spikes = spiked_lift_covariance(c_white, n_eff, s.spike_threshold)
+            d = c_reg.shape[-1]
+            scale = np.trace(c_reg, axis1=-2, axis2=-1) / d
+            c_reg = c_reg + (s.diagonal_loading * scale)[:, None, None] * np.eye(d)
+            self._noise_cache = (c_reg, n_spikes)
+            self._noise_cache_key = key
+        c_reg, n_spikes = self._noise_cache
+        self.report.spikes_per_bin = n_spikes
+        k_cross = crossterm_lift_covariance(g_white, np.eye(self.n_channels))
+        rho_g = rho(outer(g_white))
+        out = {"n_spikes": n_spikes, "c_reg": c_reg, "k_cross": k_cross, "rho_g": rho_g}
+        if s.estimator in ("auto", "lifted-mv"):
+            # auto: only bins whose noise shows structure; elsewhere the lift equals linear.
+            active = np.flatnonzero(n_spikes > 0) if s.estimator == "auto" else np.arange(
+                len(n_spikes)
+            )
+            # (C + P K)^-1 for every prior P from one generalised eigen-decomposition:
+            # C = Lc Lc^T, Lc^-1 K Lc^-T = U diag(lam) U^T  =>  Q = U^T Lc^-1.
+            lc_inv = np.linalg.inv(np.linalg.cholesky(c_reg[active]))
+            kw = lc_inv @ k_cross[active] @ np.swapaxes(lc_inv, -1, -2)
+            lam, u = np.linalg.eigh((kw + np.swapaxes(kw, -1, -2)) / 2)
+            q = np.swapaxes(u, -1, -2) @ lc_inv
+            out.update(
+                active=active, q=q, b=np.einsum("fij,fj->fi", q, rho_g[active]),
+                lam=np.maximum(lam, 0.0),
+            )
+        return out
+
+    @staticmethod
+    def _lifted_mv(c: NDArray, prior: NDArray, lf: dict) -> tuple[NDArray, NDArray]:
+        """Lifted minimum-variance unbiased power and its noise-equivalent power.
+
+        ``c = Q (rho(y~ y~^H) - rho(I))`` in the generalised eigenbasis of (C, K), where
+        ``(C + P K)^-1 = Q^T diag(1 / (1 + P lam)) Q``.
+        """
+        r = 1.0 / (1.0 + prior[:, None] * lf["lam"])
+        den = np.maximum(np.sum(lf["b"] ** 2 * r, axis=-1), 1e-300)
+        p_hat = np.sum(lf["b"] * r * c, axis=-1) / den
+        variance = 1.0 / den
+        # Gaussian equivalent: Var = sigma^4 + 2 P sigma^2  =>  sigma^2 = sqrt(P^2 + Var) - P.
+        noise_eq = np.sqrt(prior**2 + variance) - prior
+        return p_hat, noise_eq
+
+    def _lifted_mmse(
+        self, yw: NDArray, prior: NDArray, der: _Derived, mvdr_power: NDArray
+    ) -> NDArray:
+        """Shrunk (MMSE-type) lifted power estimates: lifted-wiener, -affine, -wiener-fixed."""
+        lf = der.lifted
+        mu_white = rho(np.eye(self.n_channels))
+        rho_y = lift_snapshots(yw)
+        rho_g, c_reg, k = lf["rho_g"], lf["c_reg"], lf["k_cross"]
+        mu = np.broadcast_to(mu_white, rho_g.shape)
+        est = self.settings.estimator
+        if est == "lifted-wiener":
+            # Complex Gaussian speech: E[P^2] = 2 lambda^2.
+            w = lifted_wiener_weights(rho_g, mu, c_reg, k, prior, 2 * prior**2)
+            return np.einsum("fd,fd->f", w, rho_y)
+        if est == "lifted-affine":
+            c_noise = c_reg + prior[:, None, None] * k
+            w = lifted_affine_weights(rho_g, c_noise, prior**2)
+            mean = prior[:, None] * rho_g + mu
+            return prior + np.einsum("fd,fd->f", w, rho_y - mean)
+        # lifted-wiener-fixed: the magnitude is fixed within the frame; refine it a few times.
+        a2 = prior
+        for _ in range(3):
+            w = quadratic_wiener_fixed_weights(a2, rho_g, mu, c_reg, k)
+            est_p = np.einsum("fd,fd->f", w, rho_y - mu) / np.maximum(
+                np.einsum("fd,fd->f", w, rho_g), 1e-300
+            )
+            # One snapshot per frame: keep the iterate within what the frame can hold.
+            lowest = 10 ** (MIN_PRIOR_SNR_DB / 10) * der.residual
+            a2 = np.clip(est_p, lowest, 4 * mvdr_power + prior)
+        w = quadratic_wiener_fixed_weights(a2, rho_g, mu, c_reg, k)
+        return np.einsum("fd,fd->f", w, rho_y)
+
+
+def process_array(
+    x: NDArray,
+    sample_rate_hz: float,
+    settings: Settings | None = None,
+    noise_model: NoiseModel | None = None,
+    progress: Callable[[int], None] | None = None,
+    chunk_samples: int = 1 << 16,
+) -> NDArray[np.float64]:
+    """Offline processing: the streaming engine with its latency trimmed.
+
+    ``x`` is ``(channels, samples)``; the result is ``(output_channels, samples)``,
+    sample-aligned with ``x``. ``progress`` is called with the number of input samples done.
+    """
+    settings = settings or Settings()
+    x = np.asarray(x, dtype=float)
+    if x.ndim != 2:
+        raise ValueError(f"expected (channels, samples), got shape {x.shape}")
+    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model)
+    return run_processor(proc, iter_blocks(x, chunk_samples), x.shape[1], progress)
+
+
+def iter_blocks(x: NDArray, chunk_samples: int):
+    """Yield consecutive ``(channels, <= chunk_samples)`` slices of ``x``."""
+    for start in range(0, x.shape[1], chunk_samples):
+        yield x[:, start : start + chunk_samples]
+
+
+def run_processor(
+    proc: Processor,
+    blocks,
+    n_samples: int,
+    progress: Callable[[int], None] | None = None,
+    sink: Callable[[NDArray], None] | None = None,
+) -> NDArray | None:
+    """Push ``blocks`` through ``proc`` and return (or hand to ``sink``) the aligned output.
+
+    The first ``latency_samples`` output samples are dropped and the tail is flushed with
+    zeros, so exactly ``n_samples`` aligned samples come out. With ``sink`` nothing is kept
+    in memory (files of any length); without it the output is returned as one array.
+    """
+    skip = proc.latency_samples
+    kept: list[NDArray] = []
+    emit = sink if sink is not None else kept.append
+    done = 0
+    for block in blocks:
+        out = proc.push(block)
+        done += block.shape[1]
+        if skip:
+            cut = min(skip, out.shape[1])
+            out, skip = out[:, cut:], skip - cut
+        if out.shape[1]:
+            emit(out)
+        if progress is not None:
+            progress(done)
+    remaining = proc.latency_samples
+    tail_block = 1 << 15
+    while remaining > 0:
+        n = min(tail_block, remaining)
+        out = proc.push(np.zeros((proc.n_channels, n)))
+        remaining -= n
+        if skip:
+            cut = min(skip, out.shape[1])
+            out, skip = out[:, cut:], skip - cut
+        if out.shape[1]:
+            emit(out)
+    if sink is not None:
+        return None
+    if not kept:
+        return np.zeros((proc.n_output_channels, 0))
+    return np.concatenate(kept, axis=1)[:, :n_samples]
+
+
+class NoiseLearner:
+    """Learns a :class:`NoiseModel` from one or more noise-only segments (room tone).
+
+    Every frame of every segment counts equally (no forgetting), so a long room tone is
+    used in full. Frames that would reach back before a segment's start are skipped, so
+    nothing outside the segments leaks in.
+    """
+
+    def __init__(self, sample_rate_hz: float, n_channels: int, settings: Settings | None = None):
+        settings = settings or Settings()
+        if n_channels < 2:
+            raise ValueError("a noise model needs two or more channels")
+        self.config = stft_config(sample_rate_hz, settings.frame_s)
+        self.n_channels = n_channels
+        self._acc = MomentAccumulator(self.config.n_bins, n_channels, with_lift=True)
+        self.frames = 0
+
+    def add_segment(self, blocks) -> int:
+        """Learn from one contiguous segment given as ``(channels, n)`` blocks; returns frames."""
+        stft = StreamingStft(self.config, self.n_channels, 1)
+        warmup = self.config.frame_length // self.config.hop - 1
+        seen = 0
+        added = 0
+        for block in blocks:
+            block = np.asarray(block, dtype=float)
+            if not np.all(np.isfinite(block)):
+                raise ValueError("room tone contains NaN or infinite samples")
+            for spec in stft.analyse(block):
+                seen += 1
+                if seen > warmup:
+                    self._acc.update(spec.T, 1.0, 1.0)
+                    added += 1
+        self.frames += added
+        return added
+
+    def model(self, description: str = "") -> NoiseModel:
+        if self.frames == 0:
+            raise ValueError(
+                "too little room tone to learn from: each noise segment must be longer than "
+                f"one STFT frame ({self.config.frame_length / self.config.sample_rate_hz:.3f} s)"
+            )
+        cov, lift2 = self._acc.means()
+        cfg = self.config
+        return NoiseModel(
+            covariance=cov, lift_second_moment=lift2, frames=float(self.frames),
+            sample_rate_hz=cfg.sample_rate_hz, frame_length=cfg.frame_length, hop=cfg.hop,
+            n_channels=self.n_channels, description=description,
+        )
