@@ -283,7 +283,7 @@ def markdown_page(title: str, sections: Sequence[Section], image_paths: Mapping[
                 if block.caption:
                     lines += ["", f"*{block.caption}*"]
             elif isinstance(block, Image):
-                alt = (block.alt or block.caption or block.name).replace("]", ")")
+                alt = (block.alt or block.name).replace("[", "(").replace("]", ")")
                 lines.append(f"![{alt}]({image_paths[block.name]})")
                 if block.caption:
                     lines += ["", f"*{block.caption}*"]

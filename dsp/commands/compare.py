@@ -39,7 +39,7 @@ and shuffled, neutrally named files for blind listening with a separate key.
 LISTENING_CAUTION = (
     "Listening level: start with the monitor turned low and raise it slowly. The files "
     "are matched in loudness, but any of them can still hold loud transients (clicks, "
-    "bumps, plosives), and removed noise may make a take sound quieter than it plays."
+    "bumps, plosives); never listen at a level that is uncomfortable."
 )
 ORIGINALS_CAUTION = (
     "Enhanced audio is not the original recording. Keep the unprocessed files; "
@@ -509,6 +509,7 @@ def _build_sections(comparison, inputs, figures, with_clean: bool):
                 Image(
                     figures["level-over-time"],
                     "level-over-time",
+                    alt="Level over time of the original and each version",
                     caption="Short-term level of the original and of each aligned version as "
                     "delivered (before loudness matching). Grey: the noise-only region.",
                 ),
@@ -520,6 +521,7 @@ def _build_sections(comparison, inputs, figures, with_clean: bool):
                 Image(
                     figures[f"spectrogram-{name}"],
                     f"spectrogram-{name}",
+                    alt=f"Spectrograms of the original, {name}, and what {name} removed",
                     caption=f"Left: original. Middle: {name}, aligned, as delivered. Right: "
                     f"what {name} removed (original minus aligned {name}); all on one colour "
                     "scale. Speech in the right panel means speech was removed or changed in "
@@ -743,7 +745,7 @@ def _write_all(out_dir, comparison, inputs, figures, labels, summary, stale, wit
             blind_paths.append(path)
             key["takes"][path.name] = {
                 "name": name,
-                "source": str(inputs[name].path),
+                "source": str(inputs[name].path.resolve()),
                 "gain_db": round(comparison.loudness.gain_db[name], 3),
                 "sha256": _sha256(temp),
             }
