@@ -1,9 +1,12 @@
 """``liftmag compare``: A/B liftmag's output against other versions of a take.
 
 Thin edge over :mod:`liftmag.abcompare` (alignment, loudness, scores) and
-:mod:`liftmag.report` (figures and pages). Everything is computed in memory
-first; files are then written to temporary names in the destination folders
-and renamed into place, so an error leaves nothing behind.
+:mod:`liftmag.report` (figures and pages); inputs are read with
+:mod:`liftmag.audio_io`. Everything is computed in memory first; then every
+output is written to a temporary name in its destination folder and only when
+all of them are complete are they renamed into place, so an error leaves
+nothing behind (``AtomicAudioWriter`` commits file by file, which is why the
+staging here is our own).
 """
 
 from __future__ import annotations
@@ -133,34 +136,28 @@ class _Input:
 
 
 def _read_audio(path: Path, label: str) -> tuple[np.ndarray, int]:
-    """(frames, channels) float64 and the sample rate; UserError if unreadable."""
-    import soundfile as sf
+    """(channels, frames) float64 and the sample rate; UserError if unreadable."""
+    from liftmag import audio_io
 
-    if not path.exists():
-        raise UserError(f"{label} not found: {path}")
-    if not path.is_file():
-        raise UserError(f"{label} is not a file: {path}")
     try:
-        data, fs_hz = sf.read(str(path), dtype="float64", always_2d=True)
-    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise UserError(f"cannot read {label} {path}: {reason}") from exc
-    if data.shape[0] == 0:
-        raise UserError(f"{label} {path} holds no audio")
-    if not np.all(np.isfinite(data)):
-        raise UserError(f"{label} {path} contains NaN or infinite samples")
-    return data, int(fs_hz)
+        info = audio_io.probe(path)
+        blocks = list(audio_io.read_blocks(info, 1 << 16))
+    except audio_io.AudioInputError as exc:
+        raise UserError(f"{label}: {exc}") from None
+    if not blocks:
+        raise UserError(f"{label}: {path} holds no audio")
+    return np.concatenate(blocks, axis=1), info.sample_rate_hz
 
 
 def _pick_channel(data: np.ndarray, channel: int, label: str, path: Path) -> np.ndarray:
-    if data.shape[1] == 1:
-        return data[:, 0]
-    if not 0 <= channel < data.shape[1]:
+    if data.shape[0] == 1:
+        return data[0]
+    if not 0 <= channel < data.shape[0]:
         raise UserError(
-            f"{label} {path} has {data.shape[1]} channels; --channel {channel} is out of range "
-            f"(0 to {data.shape[1] - 1})"
+            f"{label} {path} has {data.shape[0]} channels; --channel {channel} is out of range "
+            f"(0 to {data.shape[0] - 1})"
         )
-    return data[:, channel]
+    return data[channel]
 
 
 def _load(path_text: str, label: str, channel: int, target_fs_hz: int | None) -> _Input:
@@ -169,8 +166,8 @@ def _load(path_text: str, label: str, channel: int, target_fs_hz: int | None) ->
     path = Path(path_text)
     data, fs_hz = _read_audio(path, label)
     notes = []
-    if data.shape[1] > 1:
-        notes.append(f"{label} has {data.shape[1]} channels; channel {channel} was used")
+    if data.shape[0] > 1:
+        notes.append(f"{label} has {data.shape[0]} channels; channel {channel} was used")
     x = _pick_channel(data, channel, label, path)
     if target_fs_hz is not None and fs_hz != target_fs_hz:
         x = resample_to(x, fs_hz, target_fs_hz)
@@ -178,7 +175,7 @@ def _load(path_text: str, label: str, channel: int, target_fs_hz: int | None) ->
             f"{label} is at {fs_hz} Hz; resampled to the original's {target_fs_hz} Hz "
             "(polyphase filter) before comparing"
         )
-    return _Input(label, path, np.ascontiguousarray(x), fs_hz, data.shape[1], tuple(notes))
+    return _Input(label, path, np.ascontiguousarray(x), fs_hz, data.shape[0], tuple(notes))
 
 
 def _parse_versions(items: list[str]) -> list[tuple[str, str]]:
