@@ -139,6 +139,9 @@ class Scene:
     room_tone : (M, K) float64 or None
         A separate noise-only recording of the same noise sources, continuing after the take
         (as a location recordist records room tone), or None.
+    noise_parts : dict[str, (M, N) float64]
+        Each noise component as scaled into the take (for per-component checks and oracle
+        statistics); they sum to ``noise_image`` to rounding (not bit-exactly).
 
     Arrays are stored read-only so the identity ``mixture == target_images + noise_image``
     cannot be broken by accident; copy them to modify.
@@ -155,6 +158,7 @@ class Scene:
     metadata: dict[str, Any] = field(default_factory=dict)
     reference_mic: int = 0
     room_tone: NDArray[np.float64] | None = None
+    noise_parts: dict[str, NDArray[np.float64]] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         for name in ("mixture", "target_image", "target_images", "noise_image", "mic_positions_m"):
@@ -165,6 +169,12 @@ class Scene:
             tone = np.array(self.room_tone, dtype=np.float64)
             tone.setflags(write=False)
             object.__setattr__(self, "room_tone", tone)
+        parts = {}
+        for name, part in self.noise_parts.items():
+            part = np.array(part, dtype=np.float64)
+            part.setflags(write=False)
+            parts[name] = part
+        object.__setattr__(self, "noise_parts", parts)
         m, n = self.mixture.shape if self.mixture.ndim == 2 else (0, 0)
         if self.mixture.ndim != 2 or m < 2:
             raise ValueError(f"mixture must be (channels >= 2, samples), got {self.mixture.shape}")
@@ -183,6 +193,8 @@ class Scene:
         tone = self.room_tone
         if tone is not None and (tone.ndim != 2 or tone.shape[0] != m):
             raise ValueError(f"room_tone must be ({m}, samples), got {self.room_tone.shape}")
+        if any(p.shape != (m, n) for p in self.noise_parts.values()):
+            raise ValueError(f"noise_parts must have the mixture's shape {(m, n)}")
         if int(self.fs_hz) != self.fs_hz or self.fs_hz <= 0:
             raise ValueError(f"fs_hz must be a positive integer, got {self.fs_hz}")
 
@@ -704,7 +716,9 @@ def assemble_scene(
 
     with ``s_r`` the target image and ``v_r`` the noise at the reference microphone and A the
     speech-active samples of ``s_r`` (``speech_activity``). The same gains apply to the room
-    tone, which is returned when K > 0.
+    tone, which is returned when K > 0. Levels are not normalised to full scale: at low SNR
+    peaks can exceed 1.0, so write float files or scale down before writing fixed-point PCM
+    (clipping would change the noise statistics the scene promises).
     """
     t_img = np.asarray(target_images, dtype=float)
     if t_img.ndim != 2 or t_img.shape[1] < n_take:
@@ -719,6 +733,7 @@ def assemble_scene(
         raise ValueError(f"lead_in_samples must lie in [0, n_take), got {lead_in_samples}")
     m = t_img.shape[0]
     total = None
+    weights = {}
     for name, comp in noise_components.items():
         comp = np.asarray(comp, dtype=float)
         if comp.ndim != 2 or comp.shape[0] != m or comp.shape[1] < n_take:
@@ -728,7 +743,8 @@ def assemble_scene(
         power = np.mean(comp[reference_mic, :n_take] ** 2)
         if power <= 0:
             raise ValueError(f"noise component {name!r} is silent at the reference microphone")
-        weighted = comp * (10 ** (levels_db[name] / 20) / np.sqrt(power))
+        weights[name] = 10 ** (levels_db[name] / 20) / np.sqrt(power)
+        weighted = comp * weights[name]
         total = weighted if total is None else total + weighted
     target = t_img[:, :n_take]
     active = speech_activity(target[reference_mic], fs_hz)
@@ -736,7 +752,12 @@ def assemble_scene(
         raise ValueError("the target image is silent")
     signal_energy = np.sum(target[reference_mic, active] ** 2)
     noise_energy = np.sum(total[reference_mic, :n_take][active] ** 2)
-    total = total * np.sqrt(signal_energy / noise_energy * 10 ** (-snr_db / 10))
+    scale = np.sqrt(signal_energy / noise_energy * 10 ** (-snr_db / 10))
+    total = total * scale
+    parts = {
+        name: np.asarray(comp, dtype=float)[:, :n_take] * (weights[name] * scale)
+        for name, comp in noise_components.items()
+    }
     noise = total[:, :n_take]
     room_tone = total[:, n_take:] if total.shape[1] > n_take else None
     meta = dict(metadata or {})
@@ -762,6 +783,7 @@ def assemble_scene(
         metadata=meta,
         reference_mic=reference_mic,
         room_tone=room_tone,
+        noise_parts=parts,
     )
 
 
