@@ -316,7 +316,9 @@ SCORE_EXPLANATIONS = (
     "steady, roughly Gaussian noise and can be several dB off on processed audio.",
     "Kurtosis ratio: how peaky the remaining noise's spectrum is over time, after processing "
     "relative to before (Uemura et al. 2009). Near 1: the noise kept its character. Well above "
-    "1: isolated tonal blips ('musical noise') are likely audible.",
+    "1: isolated tonal blips ('musical noise') are likely audible. It needs a truly "
+    "noise-only region: any trace of speech there (onsets, tails) inflates it strongly, so "
+    "give --noise-region over room tone when in doubt.",
     "With a clean reference: SI-SDR (scale-invariant signal-to-distortion ratio, dB, higher is "
     "better), STOI and ESTOI (predicted intelligibility, 0 to 1, higher is better) and PESQ-WB "
     "(ITU-T P.862.2 predicted quality, about 1 to 4.6, higher is better).",
