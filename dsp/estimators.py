@@ -101,8 +101,8 @@ def mvdr_weights(g: ArrayLike, phi_v: ArrayLike, loading: float = 0.0) -> NDArra
 
 def mvdr_residual_power(g: ArrayLike, phi_v: ArrayLike, loading: float = 0.0) -> NDArray:
     """Noise power at the MVDR output, ``1 / (g^H Phi_v^-1 g)``."""
-    g = np.asarray(g)
-    a = _solve(_loaded(np.asarray(phi_v), loading), g)
+    g = check_finite("g", g)
+    a = _solve(_loaded(check_finite("phi_v", phi_v), loading), g)
     return 1.0 / np.real(_hdot(g, a))
 
 
@@ -115,17 +115,17 @@ def linear_wiener_weights(
     """
     g = check_finite("g", g)
     a = _solve(_loaded(check_finite("phi_y", phi_y), loading), g)
-    return np.asarray(speech_power)[..., None] * a
+    return check_finite("speech_power", speech_power)[..., None] * a
 
 
 def apply_linear(h: ArrayLike, y: ArrayLike) -> NDArray[np.complex128]:
     """Beamformer output ``h^H y`` for weights ``(..., M)`` and snapshots ``(..., M)``."""
-    return _hdot(np.asarray(h), np.asarray(y))
+    return _hdot(check_finite("h", h), check_finite("y", y))
 
 
 def linear_as_lifted(h: ArrayLike) -> NDArray[np.float64]:
     """Lifted weights ``w = rho(h h^H)`` of a linear estimator, so ``w . rho(yy^H) = |h^H y|^2``."""
-    return rho(outer(h))
+    return rho(outer(check_finite("h", h)))
 
 
 # ------------------------------------------------------------------- quadratic estimators
@@ -133,7 +133,7 @@ def linear_as_lifted(h: ArrayLike) -> NDArray[np.float64]:
 
 def apply_lifted(w: ArrayLike, rho_y: ArrayLike) -> NDArray[np.float64]:
     """Power estimate ``w . rho`` (real by construction)."""
-    return _dot(np.asarray(w), np.asarray(rho_y))
+    return _dot(check_finite("w", w), check_finite("rho_y", rho_y))
 
 
 def lifted_nulls_weights(
@@ -200,11 +200,12 @@ def quadratic_wiener_fixed_weights(
     ``E[rho] = A^2 rho_g + mu_v`` and ``R = E[rho rho^T] = C_v + A^2 K + E[rho] E[rho]^T``
     (fourth-order noise statistics in ``C_v``).
     """
-    a2 = np.asarray(magnitude_sq, dtype=float)
-    rho_g = np.asarray(rho_g)
-    mean = a2[..., None] * rho_g + np.asarray(mu_v)
+    a2 = np.asarray(check_finite("magnitude_sq", magnitude_sq), dtype=float)
+    rho_g = check_finite("rho_g", rho_g)
+    mean = a2[..., None] * rho_g + check_finite("mu_v", mu_v)
     second_moment = mean[..., :, None] * mean[..., None, :]
-    r = np.asarray(c_v) + a2[..., None, None] * np.asarray(k_cross) + second_moment
+    r = check_finite("c_v", c_v) + a2[..., None, None] * check_finite("k_cross", k_cross)
+    r = r + second_moment
     return a2[..., None] * _solve(_loaded(r, loading), mean)
 
 
@@ -228,9 +229,9 @@ def lifted_mv_weights(
     -------
     w : (..., D) weights, and variance : (...) the estimate's variance at the prior.
     """
-    rho_g = np.asarray(rho_g)
-    p = np.asarray(speech_power_prior, dtype=float)
-    c = np.asarray(c_v) + p[..., None, None] * np.asarray(k_cross)
+    rho_g = check_finite("rho_g", rho_g)
+    p = np.asarray(check_finite("speech_power_prior", speech_power_prior), dtype=float)
+    c = check_finite("c_v", c_v) + p[..., None, None] * check_finite("k_cross", k_cross)
     a = _solve(_loaded(c, loading), rho_g)
     denom = _dot(rho_g, a)
     return a / denom[..., None], 1.0 / denom
@@ -257,16 +258,18 @@ def lifted_wiener_weights(
     The estimate ``w . rho`` is the mean-square optimal power estimate among quadratic forms
     of ``y`` (uncentred, so biased towards zero).
     """
-    rho_g = np.asarray(rho_g)
-    mu_v = np.asarray(mu_v)
-    lam = np.asarray(speech_power, dtype=float)[..., None]
-    p2 = np.asarray(speech_power_second_moment, dtype=float)[..., None]
+    rho_g = check_finite("rho_g", rho_g)
+    mu_v = check_finite("mu_v", mu_v)
+    lam = np.asarray(check_finite("speech_power", speech_power), dtype=float)[..., None]
+    p2 = np.asarray(
+        check_finite("speech_power_second_moment", speech_power_second_moment), dtype=float
+    )[..., None]
     cross_mean = rho_g[..., :, None] * mu_v[..., None, :]
     r = (
         p2[..., None] * rho_g[..., :, None] * rho_g[..., None, :]
         + lam[..., None] * (cross_mean + np.swapaxes(cross_mean, -1, -2))
-        + lam[..., None] * np.asarray(k_cross)
-        + np.asarray(c_v)
+        + lam[..., None] * check_finite("k_cross", k_cross)
+        + check_finite("c_v", c_v)
         + mu_v[..., :, None] * mu_v[..., None, :]
     )
     return _solve(_loaded(r, loading), p2 * rho_g + lam * mu_v)
@@ -287,9 +290,9 @@ def lifted_affine_weights(
     ``gain = Var(P) q / (1 + Var(P) q)``, ``q = rho_g . C_n^-1 rho_g``: a shrunk
     minimum-variance distortionless estimator, which is how it is computed here.
     """
-    rho_g = np.asarray(rho_g)
-    var_p = np.asarray(speech_power_variance, dtype=float)
-    a = _solve(_loaded(np.asarray(c_noise), loading), rho_g)
+    rho_g = check_finite("rho_g", rho_g)
+    var_p = np.asarray(check_finite("speech_power_variance", speech_power_variance), dtype=float)
+    a = _solve(_loaded(check_finite("c_noise", c_noise), loading), rho_g)
     q = _dot(rho_g, a)
     gain = var_p / (1.0 + var_p * q)
     return gain[..., None] * a
@@ -453,5 +456,5 @@ def power_pattern(w: ArrayLike, steering: ArrayLike) -> NDArray[np.float64]:
     beamformer pass ``linear_as_lifted(h)``: the result is ``|h^H d|^2``. ``B`` can be negative
     for an indefinite ``H``; plot ``10 log10 |B|`` and mark the sign.
     """
-    w = np.asarray(w)
-    return np.einsum("...kd,...d->...k", lift_snapshots(np.asarray(steering)), w)
+    w = check_finite("w", w)
+    return np.einsum("...kd,...d->...k", lift_snapshots(check_finite("steering", steering)), w)
