@@ -134,7 +134,8 @@ _KIND_SPECS: dict[str, dict] = {
 }
 
 
-def _room(sources_m: list[NDArray], mics_m: NDArray, fs_hz: int) -> pra.ShoeBox:
+def build_room(sources_m: list[NDArray], mics_m: NDArray, fs_hz: int) -> pra.ShoeBox:
+    """The shoebox with its RIRs computed; ``mics_m`` is (3, M) room coordinates."""
     absorption, max_order = pra.inverse_sabine(DESIGN_RT60_S, list(ROOM_DIM_M))
     room = pra.ShoeBox(
         list(ROOM_DIM_M), fs=fs_hz, materials=pra.Material(absorption), max_order=max_order
@@ -195,7 +196,7 @@ def make_room_scene(
     mics_m = ARRAY_CENTRE_M[:, None] + np.outer([1.0, 0.0, 0.0], pos_m)
     target_pos = position_at(TARGET_DEG, TARGET_DISTANCE_M)
     names = list(spec["sources"])
-    room = _room([target_pos] + [spec["sources"][k][0] for k in names], mics_m, fs_hz)
+    room = build_room([target_pos] + [spec["sources"][k][0] for k in names], mics_m, fs_hz)
     direct_s = np.linalg.norm(target_pos - mics_m[:, 0]) / pra.constants.get("c")
     bulk = int(np.floor(direct_s * fs_hz)) + pra.constants.get("frac_delay_length") // 2
     crop = slice(pre + bulk, pre + bulk + n_take + n_tone)
