@@ -26,6 +26,7 @@ from numpy.typing import NDArray
 from liftmag.lift import lift_dimension, lift_snapshots, lift_transform
 
 FORMAT_VERSION = 1
+MIN_LIFT_EIGENVALUE = 0.01  # floor of a kept eigenvalue, relative to the Gaussian model
 FORMAT_NAME = "liftmag-noise-model"
 
 
@@ -228,7 +229,8 @@ def spiked_lift_covariance(
 
     Returns
     -------
-    regularised : (F, D, D)  ``I + sum_k (lambda_k - 1) u_k u_k^T`` over the kept directions
+    regularised : (F, D, D)  ``I + sum_k (lambda_k - 1) u_k u_k^T`` over the kept directions,
+                             with ``lambda_k`` floored at ``MIN_LIFT_EIGENVALUE``
     n_spikes : (F,)          number of kept directions per bin (0 = Gaussian-looking)
     """
     d = whitened_cov.shape[-1]
@@ -238,7 +240,8 @@ def spiked_lift_covariance(
     lower = np.where(q < 1, (1 - np.sqrt(np.minimum(q, 1))) ** 2 / threshold, 0.0)
     lam, u = np.linalg.eigh(whitened_cov)
     keep = (lam > upper[:, None]) | (lam < lower[:, None])
-    delta = np.where(keep, lam - 1.0, 0.0)
+    # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
+    delta = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE) - 1.0, 0.0)
     reg = np.eye(d) + np.einsum("fik,fk,fjk->fij", u, delta, u)
     return reg, keep.sum(axis=-1)
 

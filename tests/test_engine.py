@@ -1,0 +1,164 @@
+"""The streaming engine: alignment, latency, block-size invariance, noise models, edge cases."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+from scipy.signal import ShortTimeFFT
+
+from liftmag.engine import NoiseLearner, Processor, iter_blocks, process_array
+from liftmag.geometry import linear_array_m, steering_vectors
+from liftmag.noise import NoiseModel
+from liftmag.settings import ESTIMATORS, Settings
+from liftmag.stft import StreamingStft, stft_config
+
+
+def _noise(n_channels: int, n: int, seed: int = 0) -> np.ndarray:
+    return 0.1 * np.random.default_rng(seed).standard_normal((n_channels, n))
+
+
+def _run_blocks(proc: Processor, x: np.ndarray, block: int) -> np.ndarray:
+    return np.concatenate([proc.push(b) for b in iter_blocks(x, block)], axis=1)
+
+
+def test_streaming_frames_equal_scipy_shorttimefft_on_the_whole_signal():
+    # Reference: scipy.signal.ShortTimeFFT.stft applied to the whole signal at once.
+    cfg = stft_config(16000)
+    x = _noise(2, 9000)
+    stft = StreamingStft(cfg, 2, 2)
+    frames = np.concatenate([stft.analyse(b) for b in iter_blocks(x, 777)], axis=0)
+    whole = ShortTimeFFT(cfg.transform().win, cfg.hop, 16000, mfft=cfg.frame_length,
+                         fft_mode="onesided", phase_shift=None)
+    # Frame k covers [(k+1) hop - L, (k+1) hop): slice p of scipy is centred at p*hop.
+    padded = np.concatenate([np.zeros((2, cfg.frame_length - cfg.hop)), x], axis=1)
+    ref = whole.stft(padded, p0=0, p1=frames.shape[0], k_offset=cfg.frame_length // 2)
+    np.testing.assert_allclose(frames, np.moveaxis(ref, -1, 0), atol=1e-12)
+
+
+@pytest.mark.parametrize("fs", [16000, 44100, 48000, 96000])
+def test_passthrough_is_sample_aligned(fs):
+    x = _noise(2, fs // 2)
+    y = process_array(x, fs, Settings(estimator="passthrough"))
+    assert y.shape == (1, x.shape[1])
+    np.testing.assert_allclose(y[0], x[0], atol=1e-6)
+
+
+def test_reported_latency_equals_observed_delay():
+    fs = 16000
+    proc = Processor(Settings(estimator="passthrough"), fs, 2)
+    x = np.zeros((2, 3 * proc.latency_samples))
+    x[:, 100] = 1.0
+    y = _run_blocks(proc, x, 333)
+    assert int(np.argmax(np.abs(y[0]))) - 100 == proc.latency_samples
+
+
+@pytest.mark.parametrize("estimator", ["auto", "linear-wiener", "lifted-wiener"])
+def test_output_does_not_depend_on_block_size(estimator):
+    x = _noise(2, 16000)
+    x[:, 6000:9000] += np.sin(2 * np.pi * 440 * np.arange(3000) / 16000)  # a 'talker' burst
+    outs = [_run_blocks(Processor(Settings(estimator=estimator), 16000, 2), x, b)
+            for b in (4096, 100, 1)]
+    for other in outs[1:]:
+        np.testing.assert_allclose(other, outs[0], rtol=0, atol=1e-12)
+
+
+def test_every_estimator_and_output_mode_runs_finite_with_the_right_shape():
+    x = _noise(2, 12000)
+    for estimator in ESTIMATORS:
+        nulls = estimator == "lifted-nulls"
+        extra = {"mic_spacing_m": 0.08, "null_deg": (0.0, 180.0)} if nulls else {}
+        for mode, channels in (("cleaned", 1), ("keep-image", 2), ("taken-out", 1)):
+            y = process_array(x, 16000, Settings(estimator=estimator, output_mode=mode, **extra))
+            assert y.shape == (channels, x.shape[1]), (estimator, mode)
+            assert np.all(np.isfinite(y)), (estimator, mode)
+
+
+def test_taken_out_plus_cleaned_is_the_reference_channel():
+    x = _noise(2, 12000, seed=3)
+    cleaned = process_array(x, 16000, Settings(output_mode="cleaned"))
+    removed = process_array(x, 16000, Settings(output_mode="taken-out"))
+    np.testing.assert_allclose(cleaned + removed, x[:1], atol=1e-9)
+
+
+def test_all_silent_input_gives_silent_output_without_warnings():
+    x = np.zeros((2, 16000))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        for estimator in ("auto", "linear-wiener", "lifted-affine", "delay-sum"):
+            y = process_array(x, 16000, Settings(estimator=estimator))
+            assert np.all(y == 0.0)
+
+
+def test_refuses_nan_input_and_mono():
+    proc = Processor(Settings(), 16000, 2)
+    bad = np.zeros((2, 100))
+    bad[1, 50] = np.nan
+    with pytest.raises(ValueError, match="NaN"):
+        proc.push(bad)
+    with pytest.raises(ValueError, match="two or more microphones"):
+        Processor(Settings(), 16000, 1)
+
+
+def test_steering_vector_sign_matches_a_physically_delayed_signal():
+    # DFT delay theorem (any signals text, e.g. Oppenheim & Schafer): a signal that arrives
+    # tau later has its spectrum multiplied by exp(-j 2 pi f tau). A plane wave from 0 deg
+    # (the +x side) reaches the mic at larger x first, so mic 1 leads mic 0.
+    fs = 16000
+    pos = linear_array_m(2, 343.0 * 4 / fs)  # 4 samples of travel between the mics
+    rng = np.random.default_rng(5)
+    s = rng.standard_normal(20000)
+    x = np.stack([s[0:16000], s[4:16004]])  # mic 1 gets each sample 4 samples earlier
+    cfg = stft_config(fs)
+    frames = StreamingStft(cfg, 2, 2).analyse(x)[4:]
+    cross = np.mean(frames[:, 1, :] * np.conj(frames[:, 0, :]), axis=0)
+    d = steering_vectors(pos, 0.0, cfg.frequencies_hz)
+    band = (cfg.frequencies_hz > 200) & (cfg.frequencies_hz < 1800)
+    phase_err = np.angle(cross[band] * np.conj(d[band, 1]))
+    assert np.max(np.abs(phase_err)) < 0.05
+
+
+def test_circular_gaussian_noise_uses_the_linear_estimator_almost_everywhere():
+    # Marchenko & Pastur (1967): a Gaussian sample's whitened lifted covariance has its
+    # eigenvalues inside the bulk, so the spiked regulariser finds (almost) nothing.
+    fs = 16000
+    learner = NoiseLearner(fs, 2)
+    learner.add_segment(iter_blocks(_noise(2, 20 * fs, seed=7), 1 << 15))
+    model = learner.model()
+    proc = Processor(Settings(noise_mode="hold"), fs, 2, model)
+    proc.push(_noise(2, fs, seed=8))
+    assert proc.report.lifted_fraction < 0.02
+
+
+def test_noise_model_round_trip_and_mismatch_messages():
+    fs = 16000
+    learner = NoiseLearner(fs, 2)
+    learner.add_segment(iter_blocks(_noise(2, 3 * fs), 4096))
+    model = learner.model("test room tone")
+    again = NoiseModel.from_bytes(model.to_bytes())
+    np.testing.assert_array_equal(again.covariance, model.covariance)
+    np.testing.assert_array_equal(again.lift_second_moment, model.lift_second_moment)
+    assert again.description == "test room tone" and again.frames == model.frames
+    with pytest.raises(ValueError, match="sample rate 16000 Hz vs 48000 Hz"):
+        Processor(Settings(), 48000, 2, model)
+    with pytest.raises(ValueError, match="2 channels vs 4"):
+        Processor(Settings(), 16000, 4, model)
+    with pytest.raises(ValueError, match="STFT frame/hop"):
+        Processor(Settings(frame_s=0.064), 16000, 2, model)
+    with pytest.raises(ValueError, match="not a liftmag noise model"):
+        NoiseModel.from_bytes(b"PK\x03\x04 not really")
+
+
+def test_learning_from_what_passes_matches_the_room_tone_learner():
+    fs = 16000
+    x = _noise(2, 2 * fs, seed=11)
+    proc = Processor(Settings(noise_mode="learn"), fs, 2)
+    proc.push(x)
+    learner = NoiseLearner(fs, 2)
+    learner.add_segment([x])
+    # Both average every frame of the same noise; the learner skips the zero-padded start.
+    ratio = np.real(np.trace(proc.noise_model().covariance, axis1=1, axis2=2)) / np.real(
+        np.trace(learner.model().covariance, axis1=1, axis2=2)
+    )
+    assert np.median(ratio) == pytest.approx(1.0, abs=0.1)
