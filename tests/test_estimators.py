@@ -13,6 +13,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import optimize
+
 from liftmag import estimators as est
 from liftmag.geometry import SPEED_OF_SOUND_M_S, linear_array_m, steering_vectors
 from liftmag.lift import (
@@ -22,7 +24,6 @@ from liftmag.lift import (
     rho,
 )
 from liftmag.study import noise_field
-from scipy import optimize
 
 RNG = np.random.default_rng(7)
 
@@ -257,7 +258,7 @@ def test_quadratic_wiener_in_sample_and_with_true_statistics_on_samples() -> Non
     # sampling error (3 standard errors of the paired difference).
     m, a2, snr_db, n = 2, 1.0, 0.0, 60_000
     noise_power = 10 ** (-snr_db / 10)
-    pos, g, phi, c_v, rho_g, mu_v, k, _, _ = _fixed_stats("exponential", m, a2, noise_power)
+    _, g, phi, c_v, rho_g, mu_v, k, _, _ = _fixed_stats("exponential", m, a2, noise_power)
     raw = RNG.standard_exponential((n, m, 2)) - 1.0
     v = np.sqrt(noise_power / 2) * (raw[..., 0] + 1j * raw[..., 1])
     s = np.sqrt(a2) * np.exp(2j * np.pi * RNG.random(n))
@@ -335,7 +336,7 @@ def test_affine_lifted_beats_mvdr_power_minus_noise_for_random_power(kind: str) 
 def test_random_power_wiener_reduces_to_fixed_magnitude_wiener_when_power_is_fixed() -> None:
     # Derived: with Var(P) = 0 (E[P^2] = lambda^2) the random-power normal equations are those
     # of the fixed-magnitude quadratic Wiener with A^2 = lambda.
-    _, g, phi, c_v, rho_g, mu_v, k, _, _ = _fixed_stats("exponential", 3, 0.7, 0.4)
+    *_, c_v, rho_g, mu_v, k, _, _ = _fixed_stats("exponential", 3, 0.7, 0.4)
     w_fixed = est.quadratic_wiener_fixed_weights(0.7, rho_g, mu_v, c_v, k)
     w_random = est.lifted_wiener_weights(rho_g, mu_v, c_v, k, 0.7, 0.49)
     np.testing.assert_allclose(w_random, w_fixed, rtol=1e-10)

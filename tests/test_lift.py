@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from liftmag.estimators import linear_as_lifted, outer
 from liftmag.lift import (
     crossterm_lift_covariance,

@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
 from liftmag import estimators as est
 from liftmag.lift import crossterm_lift_covariance, gaussian_lift_covariance, lift_snapshots, rho
 from liftmag.lift import unrho as unrho_

@@ -72,7 +72,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     geo.add_argument("--mic-spacing-m", type=float, default=None,
                      help="spacing of the uniform linear array in metres (default 0.08)")
     geo.add_argument("--positions-m", default=None,
-                     help="microphone positions along x in metres, e.g. -0.04,0.04 "
+                     help="microphone positions along x in metres, e.g. "
+                     "--positions-m=-0.04,0.04 (the = keeps a leading minus sign) "
                      "(instead of --mics/--mic-spacing-m)")
     parser.add_argument("--frequency-hz", type=float, default=1000.0,
                         help="frequency of the narrowband pattern (default %(default)s)")
