@@ -681,3 +681,43 @@ class NoiseLearner:
             sample_rate_hz=cfg.sample_rate_hz, frame_length=cfg.frame_length, hop=cfg.hop,
             n_channels=self.n_channels, description=description,
         )
+
+
+def model_weights_at_bin(
+    model: NoiseModel, g: NDArray, bin_index: int, speech_power: float,
+    settings: Settings | None = None,
+) -> tuple[NDArray, NDArray, int]:
+    """MVDR weights and lifted minimum-variance power weights that ``auto`` uses in one bin.
+
+    Built from a learned noise model and an RTF ``g`` (M,), for a speech-power prior
+    ``speech_power``. Returns ``(h_mvdr, w_lifted, n_spikes)`` with ``w_lifted`` in the raw
+    (unwhitened) lift, so ``w_lifted . rho(d d^H)`` is the power pattern toward ``d``. Used to
+    draw the patterns of the learned estimators.
+    """
+    settings = settings or Settings()
+    from liftmag.lift import lift_transform
+
+    cov = model.covariance[bin_index : bin_index + 1]
+    lift2 = model.lift_second_moment[bin_index : bin_index + 1]
+    _, inv = _chol_inverse(cov, settings.diagonal_loading)
+    g = np.asarray(g, dtype=complex)[None]
+    gw = np.einsum("fij,fj->fi", inv, g)
+    h_white = gw / np.sum(np.abs(gw) ** 2, axis=-1, keepdims=True)
+    h_mvdr = np.einsum("fji,fj->fi", np.conj(inv), h_white)  # z = h_w^H L^-1 y = (L^-H h_w)^H y
+    c_white = whitened_lift_covariance(cov, lift2, inv)
+    c_reg, n_spikes = spiked_lift_covariance(
+        c_white, np.array([model.frames]), settings.spike_threshold
+    )
+    m = g.shape[-1]
+    k_cross = crossterm_lift_covariance(gw, np.eye(m))
+    rho_g = rho(outer(gw))
+    from liftmag.estimators import lifted_mv_weights
+
+    w_white, _ = lifted_mv_weights(rho_g, c_reg, k_cross, np.array([speech_power]),
+                                   settings.diagonal_loading)
+    # w . rho(y~ y~^H) = w . B rho(y y^H): the raw-domain weights are B^T w.
+    t = lift_transform(m)
+    kron = (np.conj(inv)[:, :, None, :, None] * inv[:, None, :, None, :]).reshape(1, m * m, m * m)
+    b = np.real(t @ kron @ t.conj().T)
+    w_raw = np.einsum("fij,fi->fj", b, w_white)
+    return h_mvdr[0], w_raw[0], int(n_spikes[0])
