@@ -19,6 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import soundfile as sf
+
 from liftmag.audio_io import (
     AtomicAudioWriter,
     AudioGroup,

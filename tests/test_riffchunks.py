@@ -22,6 +22,7 @@ import pytest
 import soundfile as sf
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+
 from liftmag import riffchunks as rc
 
 RATE_HZ = 48_000
