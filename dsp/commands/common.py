@@ -116,3 +116,24 @@ CAUTION = (
     "unprocessed file for any forensic or evidential purpose. Start playback at a low "
     "monitoring level."
 )
+
+
+def settings_table_markdown() -> str:
+    """The settings table of the README, generated from ``Settings`` (a test keeps them equal)."""
+    lines = [
+        "| option | LV2 control | default | range / choices | what it does |",
+        "|---|---|---|---|---|",
+    ]
+    for f in settings_fields():
+        meta = f.metadata
+        option = "(host only)" if f.name in CLI_HIDDEN_FIELDS else f"`{option_name(f.name)}`"
+        port = meta["lv2_label"] if meta.get("lv2_port") else ""
+        default = "unset" if f.default in (None, ()) else f"{f.default}"
+        if meta.get("choices"):
+            span = ", ".join(meta["choices"])
+        elif meta.get("minimum") is not None:
+            span = f"{meta['minimum']:g} to {meta['maximum']:g} {meta.get('unit', '')}".strip()
+        else:
+            span = "on / off"
+        lines.append(f"| {option} | {port} | {default} | {span} | {meta['help']} |")
+    return "\n".join(lines)
