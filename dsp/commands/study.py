@@ -39,8 +39,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument(
         "--snr-db", action="append", default=None,
-        help="input SNRs in dB, repeatable or comma list (default "
-        + ",".join(f"{x:g}" for x in d.snr_db) + ")",
+        help="input SNRs in dB, repeatable or comma list; write --snr-db=-10,0 when the "
+        "list starts with a minus sign (default " + ",".join(f"{x:g}" for x in d.snr_db) + ")",
     )
     parser.add_argument("--mics", type=int, default=d.n_mics,
                         help="microphones of the uniform linear array (default %(default)s)")
