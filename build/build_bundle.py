@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import argparse
 import hashlib
-import importlib
+import importlib.util
 import json
 import os
 import shutil
@@ -42,11 +42,30 @@ SOURCES = (
 )
 
 
-def _plugin_module(name: str) -> Any:
-    # plugin/ is a directory of build inputs, not an installed package.
-    if str(REPO) not in sys.path:
-        sys.path.insert(0, str(REPO))
-    return importlib.import_module(f"plugin.{name}")
+def plugin_module(name: str) -> Any:
+    """Load ``plugin/<name>.py`` (plugin/ holds build inputs, not an installed package)."""
+    full = f"liftmag_plugin_{name}"
+    if full in sys.modules:
+        return sys.modules[full]
+    spec = importlib.util.spec_from_file_location(full, REPO / "plugin" / f"{name}.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[full] = module  # dataclasses look their module up while the class is made
+    try:
+        spec.loader.exec_module(module)
+    except BaseException:
+        del sys.modules[full]
+        raise
+    return module
+
+
+def default_python() -> str:
+    """The interpreter to bake in: the running virtual environment's ``bin/python``."""
+    if sys.prefix != sys.base_prefix:
+        candidate = Path(sys.prefix) / "bin" / "python"
+        if os.access(candidate, os.X_OK):
+            return str(candidate)
+    return sys.executable
 
 
 def source_digest(venv_python: str) -> str:
@@ -65,18 +84,20 @@ def read_build_info(bundle: Path) -> dict[str, Any] | None:
         return None
 
 
-def is_current(bundle: Path, venv_python: str = sys.executable) -> bool:
+def is_current(bundle: Path, venv_python: str | None = None) -> bool:
     """Whether ``bundle`` exists complete and was built from the present sources."""
     info = read_build_info(bundle)
+    venv_python = venv_python or default_python()
     return bool(info) and (bundle / BINARY).is_file() and info.get(
         "source_digest") == source_digest(venv_python)
 
 
-def build_bundle(out: Path = DEFAULT_OUT, venv_python: str = sys.executable,
+def build_bundle(out: Path = DEFAULT_OUT, venv_python: str | None = None,
                  verbose: bool = False) -> Path:
     """Build the bundle into ``out`` (replaced whole, so a half-built bundle never shows)."""
-    ttl = _plugin_module("ttl")
-    build_shim = _plugin_module("build_shim")
+    venv_python = venv_python or default_python()
+    ttl = plugin_module("ttl")
+    build_shim = plugin_module("build_shim")
     from liftmag import __version__
 
     out = out.resolve()
@@ -128,9 +149,10 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--out", type=Path, default=DEFAULT_OUT,
                         help=f"bundle directory to write (default {DEFAULT_OUT})")
-    parser.add_argument("--python", default=sys.executable,
-                        help="interpreter path to bake in (default: the one running this; "
-                             "it must share this interpreter's libpython)")
+    parser.add_argument("--python", default=None,
+                        help="interpreter path to bake in (default: the running virtual "
+                             "environment's bin/python; it must share this interpreter's "
+                             "libpython)")
     parser.add_argument("--verbose", action="store_true", help="show the compiler commands")
     args = parser.parse_args(argv)
     out = build_bundle(args.out, args.python, verbose=args.verbose)

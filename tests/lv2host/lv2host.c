@@ -18,7 +18,8 @@
  * BLOCKS: "rN" random block sizes 1..8192 from seed N, or "fN" fixed blocks of N frames;
  * RESTORE / SAVE: state file to restore before activate() / save after the last run(),
  * or "-". Output files of round r > 0 get the suffix ".r<r>".
- * For every job it prints "job K round R latency L".
+ * For every job it prints "job K round R latency L restore S save S", where S is the
+ * LV2_State_Status returned (-1: not asked for).
  */
 #include <dlfcn.h>
 #include <math.h>
@@ -300,12 +301,12 @@ static void run_job(int k)
 
     const LV2_State_Interface *state =
         (const LV2_State_Interface *)desc->extension_data(LV2_STATE__interface);
+    int restore_status = -1, save_status = -1;
     if (strcmp(job->restore, "-")) {
         Store store = {0};
         if (!state || read_store(&store, job->restore) != 0)
-            die("cannot restore state");
-        if (state->restore(inst, retrieve_prop, &store, 0, features) != LV2_STATE_SUCCESS)
-            die("restore failed");
+            die("cannot read a state file");
+        restore_status = state->restore(inst, retrieve_prop, &store, 0, features);
         free_store(&store);
     }
 
@@ -332,10 +333,11 @@ static void run_job(int k)
     }
     if (strcmp(job->save, "-")) {
         Store store = {0};
-        if (!state || state->save(inst, store_prop, &store, 0, features) != LV2_STATE_SUCCESS)
-            die("save failed");
-        if (write_store(&store, job->save) != 0)
-            die("cannot write state");
+        if (!state)
+            die("no state interface");
+        save_status = state->save(inst, store_prop, &store, 0, features);
+        if (save_status == LV2_STATE_SUCCESS && write_store(&store, job->save) != 0)
+            die("cannot write a state file");
         free_store(&store);
     }
     desc->deactivate(inst);
@@ -351,7 +353,8 @@ static void run_job(int k)
         die("cannot write an output file");
     fclose(f);
     pthread_mutex_lock(&out_lock);
-    printf("job %d round %d latency %.0f\n", k, round_index, latency);
+    printf("job %d round %d latency %.0f restore %d save %d\n", k, round_index, latency,
+           restore_status, save_status);
     fflush(stdout);
     pthread_mutex_unlock(&out_lock);
     free(input);

@@ -1,0 +1,124 @@
+"""The plugin's port table and control mapping, without the LV2 toolchain.
+
+The TTL itself is checked by lilv and lv2_validate in test_plugin_bundle.py; here we check
+that the port table follows the settings and that port values map back to settings.
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from lv2host import support
+
+from liftmag.settings import Settings, settings_fields
+
+ttl = support.ttl_module()
+bridge = support.bridge_module()
+
+
+def _controls() -> list[dict]:
+    return [p.to_json() for p in ttl.control_ports()]
+
+
+def test_ports_follow_the_settings_fields() -> None:
+    port_fields = [f.name for f in settings_fields() if f.metadata.get("lv2_port")]
+    assert [p.field for p in ttl.control_ports()] == port_fields
+    # The issue names these controls; they must all be there.
+    for name in ("estimator", "reduction_limit_db", "target_deg", "mic_spacing_m",
+                 "noise_mode", "output_mode", "bypass"):
+        assert name in port_fields
+
+
+def test_layout_is_contiguous_and_ends_with_latency() -> None:
+    ports = ttl.control_ports()
+    for _, n, _ in ttl.PLUGINS:
+        index = ttl.port_indices(n, ports)
+        # LV2 core: port indices run from 0 to (number of ports - 1) without gaps.
+        assert sorted(index.values()) == list(range(2 * n + len(ports) + 1))
+        assert index["latency"] == 2 * n + len(ports)
+
+
+def test_enumerations_offer_only_usable_choices() -> None:
+    estimator = next(p for p in ttl.control_ports() if p.field == "estimator")
+    offered = {estimator.choices[i] for i in estimator.offered}
+    # lifted-nulls needs null bearings, which have no port: Settings refuses it without them.
+    with pytest.raises(ValueError):
+        Settings(estimator="lifted-nulls", mic_spacing_m=0.1)
+    assert "lifted-nulls" not in offered
+    assert offered == set(estimator.choices) - {"lifted-nulls"}
+    assert estimator.default == estimator.choices.index(Settings().estimator)
+
+
+def test_comments_give_unit_range_and_unset_value() -> None:
+    for port in ttl.control_ports():
+        comment = ttl.port_comment(port)
+        if port.unit:
+            assert ttl.UNIT_WORDS[port.unit] in comment
+        if port.unset is not None:
+            assert f"{ttl._number(port.unset)} means not set" in comment
+            assert port.minimum <= port.unset <= port.maximum
+        assert port.minimum <= port.default <= port.maximum
+
+
+def test_turtle_literals_escape_quotes_and_backslashes() -> None:
+    assert ttl._literal('say "hi" \\ now') == '"say \\"hi\\" \\\\ now"'
+    assert ttl._literal("two\nlines").startswith('"""')
+    assert ttl._number(0.005) == "0.005"
+    assert ttl._number(18.0) == "18"
+
+
+def test_defaults_map_to_default_settings() -> None:
+    controls = _controls()
+    values = [p["default"] for p in controls]
+    settings, problems = bridge.settings_from_controls(values, controls)
+    assert settings == Settings() and problems == []
+    unconnected = [math.nan] * len(controls)
+    assert bridge.settings_from_controls(unconnected, controls) == (Settings(), [])
+
+
+def _values(**by_symbol: float) -> tuple[list[float], list[dict]]:
+    controls = _controls()
+    return [by_symbol.get(p["symbol"], p["default"]) for p in controls], controls
+
+
+def test_port_values_map_to_settings() -> None:
+    values, controls = _values(estimator=9, reduction_limit_db=12.0, target_deg=60.0,
+                               mic_spacing_m=0.08, noise_mode=2, output_mode=1, bypass=1.0)
+    settings, problems = bridge.settings_from_controls(values, controls)
+    assert problems == []
+    assert settings == Settings(estimator="passthrough", reduction_limit_db=12.0,
+                                target_deg=60.0, mic_spacing_m=0.08, noise_mode="hold",
+                                output_mode="keep-image", bypass=True)
+
+
+def test_out_of_range_values_are_clamped_or_unset() -> None:
+    values, controls = _values(reduction_limit_db=99.0, mic_spacing_m=0.001)
+    settings, _ = bridge.settings_from_controls(values, controls)
+    assert settings.reduction_limit_db == 40.0
+    assert settings.mic_spacing_m is None  # 0.001 m lies nearer "not set" (0) than 0.005 m
+    values, controls = _values(mic_spacing_m=0.004)
+    assert bridge.settings_from_controls(values, controls)[0].mic_spacing_m == 0.005
+
+
+def test_refused_combinations_fall_back_and_say_so() -> None:
+    # A bearing without a spacing is refused by Settings; the plugin drops the bearing.
+    values, controls = _values(target_deg=45.0, reduction_limit_db=6.0)
+    settings, problems = bridge.settings_from_controls(values, controls)
+    assert settings.target_deg is None and settings.reduction_limit_db == 6.0
+    assert problems
+    values, controls = _values(estimator=4)  # lifted-nulls: not offered
+    settings, problems = bridge.settings_from_controls(values, controls)
+    assert settings.estimator == Settings().estimator and problems
+
+
+def test_wrong_number_of_values_is_an_error() -> None:
+    controls = _controls()
+    with pytest.raises(ValueError, match="rebuild"):
+        bridge.settings_from_controls([0.0], controls)
+
+
+def test_build_digest_follows_the_baked_interpreter() -> None:
+    builder = support.build_module()
+    assert builder.source_digest("/a/bin/python") != builder.source_digest("/b/bin/python")
+    assert builder.source_digest("/a/bin/python") == builder.source_digest("/a/bin/python")
