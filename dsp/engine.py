@@ -310,7 +310,7 @@ class Processor:
         der = self._derived
         k_frames = y.shape[0]
 
-        yw = np.einsum("fij,kfj->kfi", der.whitener, y)
+        yw = np.einsum("fij,kfj->kfi", der.whitener, y, optimize=True)
         z = np.einsum("fi,kfi->kf", np.conj(der.g_white), yw) * der.residual
         mvdr_power = np.abs(z) ** 2
         p_lin = mvdr_power - der.residual
@@ -340,7 +340,8 @@ class Processor:
             active = lf["active"]  # bins where the lift is used
             mu_white = rho(np.eye(self.n_channels))
             lifted_c = np.einsum(
-                "fij,kfj->kfi", lf["q"], lift_snapshots(yw[:, active]) - mu_white
+                "fij,kfj->kfi", lf["q"], lift_snapshots(yw[:, active]) - mu_white,
+                optimize=True,
             )
         amp = np.empty(p_lin.shape)
         floor_snr = 10 ** (MIN_PRIOR_SNR_DB / 10)

@@ -85,10 +85,13 @@ def lift_snapshots(y: ArrayLike) -> NDArray[np.float64]:
     y = np.asarray(y)
     m = y.shape[-1]
     i, j = _pairs(m)
+    n_pairs = len(i)
+    out = np.empty((*y.shape[:-1], m * m))
+    out[..., :m] = y.real**2 + y.imag**2
     cross = y[..., i] * np.conj(y[..., j])
-    return np.concatenate(
-        [np.abs(y) ** 2, SQRT2 * cross.real, SQRT2 * cross.imag], axis=-1
-    )
+    np.multiply(cross.real, SQRT2, out=out[..., m : m + n_pairs])
+    np.multiply(cross.imag, SQRT2, out=out[..., m + n_pairs :])
+    return out
 
 
 @cache

@@ -157,11 +157,12 @@ class MomentAccumulator:
         wd = w * decay[:, None]
         keep = forgetting**k_frames
         self.cov_sum *= keep
-        self.cov_sum += np.einsum("kf,kfi,kfj->fij", wd, y, np.conj(y))
+        # Batched (F, M, K) @ (F, K, M): much faster than a three-operand einsum here.
+        self.cov_sum += (wd[:, :, None] * y).transpose(1, 2, 0) @ np.conj(y).transpose(1, 0, 2)
         if self.lift_sum is not None:
             r = lift_snapshots(y)
             self.lift_sum *= keep
-            self.lift_sum += np.einsum("kf,kfi,kfj->fij", wd, r, r)
+            self.lift_sum += np.einsum("kf,kfi,kfj->fij", wd, r, r, optimize=True)
         self.weight = keep * self.weight + wd.sum(axis=0)
         self.weight_sq = keep**2 * self.weight_sq + (wd**2).sum(axis=0)
         self.version += 1

@@ -60,8 +60,10 @@ def test_output_does_not_depend_on_block_size(estimator):
     x[:, 6000:9000] += np.sin(2 * np.pi * 440 * np.arange(3000) / 16000)  # a 'talker' burst
     outs = [_run_blocks(Processor(Settings(estimator=estimator), 16000, 2), x, b)
             for b in (4096, 100, 1)]
+    # Frames that arrive together are summed as one batch, so the rounding differs between
+    # block sizes; the architecture asks for agreement within float32 (about 6e-8).
     for other in outs[1:]:
-        np.testing.assert_allclose(other, outs[0], rtol=0, atol=1e-12)
+        np.testing.assert_allclose(other, outs[0], rtol=0, atol=1e-9)
 
 
 def test_every_estimator_and_output_mode_runs_finite_with_the_right_shape():
