@@ -72,6 +72,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except UserError as exc:
         print(f"liftmag {args.verb}: error: {exc}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # Output piped into `head` or similar: the reader left; that is not an error.
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print(f"liftmag {args.verb}: interrupted; no partial output was left.", file=sys.stderr)
         return 130
