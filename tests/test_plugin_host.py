@@ -180,7 +180,7 @@ def test_injected_faults_are_logged_not_fatal(fault: str, bundle: Path, host: Pa
                                               tmp_path: Path) -> None:
     bridge = support.bridge_module()
     rate = 16000
-    x = _signal(2, 0.5, rate, seed=31, hostile=True)
+    x = _signal(2, 1.0, rate, seed=31, hostile=True)
     state_dir = tmp_path / "state"
     saved = tmp_path / "ok.state"
     ok_env = support.lv2_env(bundle.parent, state_dir)

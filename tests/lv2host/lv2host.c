@@ -18,8 +18,10 @@
  * BLOCKS: "rN" random block sizes 1..8192 from seed N, or "fN" fixed blocks of N frames;
  * RESTORE / SAVE: state file to restore before activate() / save after the last run(),
  * or "-". Output files of round r > 0 get the suffix ".r<r>".
- * For every job it prints "job K round R latency L restore S save S", where S is the
- * LV2_State_Status returned (-1: not asked for).
+ * For every job it prints "job K round R latency L restore S save S instantiate_ms T
+ * run_ms T worst_run_ms T", where S is the LV2_State_Status returned (-1: not asked for),
+ * and the times are wall-clock milliseconds of instantiate(), of all run() calls, and of
+ * the slowest run() call.
  */
 #include <dlfcn.h>
 #include <math.h>
@@ -28,6 +30,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <time.h>
 
 #include <lv2/core/lv2.h>
 #include <lv2/state/state.h>
@@ -37,6 +40,13 @@
 #define MAX_PORTS 64
 #define MAX_JOBS 64
 #define MAX_PROPS 16
+
+static double now_ms(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_MONOTONIC, &ts);
+    return ts.tv_sec * 1e3 + ts.tv_nsec / 1e6;
+}
 
 static void die(const char *what)
 {
@@ -286,7 +296,9 @@ static void run_job(int k)
     float controls[MAX_PORTS];
     float latency = -1.0f;
 
+    const double t_inst = now_ms();
     LV2_Handle inst = desc->instantiate(desc, job->rate, bundle_dir, features);
+    const double inst_ms = now_ms() - t_inst;
     if (!inst)
         die("instantiate returned NULL");
     for (uint32_t c = 0; c < job->n_in; ++c)
@@ -320,13 +332,19 @@ static void run_job(int k)
     if (!seed && (fixed < 1 || fixed > MAX_BLOCK))
         die("bad block size");
     size_t pos = 0;
+    double worst_ms = 0.0, run_ms = 0.0;
     while (pos < n_frames) {
         uint32_t n = seed ? (uint32_t)(next_random(&seed) % MAX_BLOCK) + 1 : fixed;
         if (n > n_frames - pos)
             n = (uint32_t)(n_frames - pos);
         for (uint32_t c = 0; c < job->n_in; ++c)
             memcpy(in_buf[c], input + c * n_frames + pos, n * sizeof(float));
+        const double t_run = now_ms();
         desc->run(inst, n);
+        const double took = now_ms() - t_run;
+        run_ms += took;
+        if (took > worst_ms)
+            worst_ms = took;
         for (uint32_t c = 0; c < job->n_out; ++c)
             memcpy(output + c * n_frames + pos, out_buf[c], n * sizeof(float));
         pos += n;
@@ -353,8 +371,9 @@ static void run_job(int k)
         die("cannot write an output file");
     fclose(f);
     pthread_mutex_lock(&out_lock);
-    printf("job %d round %d latency %.0f restore %d save %d\n", k, round_index, latency,
-           restore_status, save_status);
+    printf("job %d round %d latency %.0f restore %d save %d instantiate_ms %.3f "
+           "run_ms %.3f worst_run_ms %.3f\n", k, round_index, latency, restore_status,
+           save_status, inst_ms, run_ms, worst_ms);
     fflush(stdout);
     pthread_mutex_unlock(&out_lock);
     free(input);

@@ -176,6 +176,7 @@ class HostResult:
     restore_status: dict[tuple[int, int], int]
     save_status: dict[tuple[int, int], int]
     stderr: str
+    timing_ms: dict[tuple[int, int], dict[str, float]]  # instantiate, run, worst_run
 
 
 def run_host(host: Path, bundle_dir: Path, jobs: list[Job], workdir: Path, env: dict[str, str],
@@ -206,11 +207,16 @@ def run_host(host: Path, bundle_dir: Path, jobs: list[Job], workdir: Path, env: 
                            str(rounds)], env=env, capture_output=True, text=True, timeout=900)
     if proc.returncode != 0:
         raise AssertionError(f"lv2host failed ({proc.returncode}):\n{proc.stderr[-4000:]}")
-    latency, restore, save = {}, {}, {}
-    for m in re.finditer(r"job (\d+) round (\d+) latency (-?\d+) restore (-?\d+) save (-?\d+)",
-                         proc.stdout):
+    latency, restore, save, timing = {}, {}, {}, {}
+    pattern = (r"job (\d+) round (\d+) latency (-?\d+) restore (-?\d+) save (-?\d+) "
+               r"instantiate_ms (\S+) run_ms (\S+) worst_run_ms (\S+)")
+    for m in re.finditer(pattern, proc.stdout):
         key = (int(m.group(1)), int(m.group(2)))
         latency[key], restore[key], save[key] = (int(m.group(i)) for i in (3, 4, 5))
+        timing[key] = {name: float(m.group(i))
+                       for name, i in (("instantiate", 6), ("run", 7), ("worst_run", 8))}
+    if len(latency) != len(jobs) * rounds:
+        raise AssertionError(f"lv2host reported {len(latency)} of {len(jobs) * rounds} jobs")
     outputs = []
     for r in range(rounds):
         suffix = "" if r == 0 else f".r{r}"
@@ -218,7 +224,7 @@ def run_host(host: Path, bundle_dir: Path, jobs: list[Job], workdir: Path, env: 
             np.fromfile(workdir / f"{tag}-out{k}.f32{suffix}", dtype="<f4").reshape(n_out[k], -1)
             for k in range(len(jobs))
         ])
-    return HostResult(outputs, latency, restore, save, proc.stderr)
+    return HostResult(outputs, latency, restore, save, proc.stderr, timing)
 
 
 def read_state(path: Path) -> list[tuple[str, str, int, bytes]]:
