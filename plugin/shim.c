@@ -451,7 +451,9 @@ static LV2_State_Status save(LV2_Handle instance, LV2_State_Store_Function store
     if (!self->handle)
         return LV2_STATE_SUCCESS; /* running dry: there is no model to keep */
     StoreSink sink = {store, handle, self->urid_model, self->urid_chunk, LV2_STATE_ERR_UNKNOWN};
-    if (liftmag_py_save(self->handle, &sink) != 1)
+    /* sink.status stays ERR_UNKNOWN unless the bridge reached the host's store(), in which
+       case it is store()'s own answer. */
+    if (liftmag_py_save(self->handle, &sink) != 1 && sink.status == LV2_STATE_SUCCESS)
         return LV2_STATE_ERR_UNKNOWN;
     return sink.status;
 }
