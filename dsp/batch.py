@@ -410,10 +410,17 @@ def read_manifest(path: str | Path, out_dir: str | Path) -> list[TakePlan]:
         raise BatchError(f"manifest {manifest}: no takes listed under the column names")
     base = manifest.parent
     out = Path(os.path.abspath(out_dir))
-    return [
-        _manifest_row(dict(zip(header, cells, strict=False)), number, base, out)
-        for number, cells in enumerate(rows[1:], start=2)
-    ]
+    plans = []
+    for number, cells in enumerate(rows[1:], start=2):
+        plan = _manifest_row(dict(zip(header, cells, strict=False)), number, base, out)
+        if any(cell.strip() for cell in cells[len(header):]):
+            # Usually an unquoted comma, e.g. null_deg 20,160 written without quotes.
+            plan = dataclasses.replace(plan, problem=(
+                f"the row has {len(cells)} cells but the first row names {len(header)} "
+                "columns (put quotes around cells that contain commas)"
+            ))
+        plans.append(plan)
+    return plans
 
 
 def _check_manifest_header(manifest: Path, header: list[str]) -> None:

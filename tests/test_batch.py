@@ -309,14 +309,17 @@ def test_manifest_rows_with_stems_room_tone_and_overrides(tmp_path, capsys, scen
         "a.wav,plain/a.wav,,,\n"
         "b1.wav;b2.wav,toned/b.wav,tone.wav,lifted-mv,12\n"
         "a.wav,bad/a.wav,,,loud\n"
+        "a.wav,bad/a2.wav,,mvdr,12,160\n"
     )
     out = tmp_path / "out"
     rc, _, _ = run_cli(capsys, "batch", "--manifest", str(manifest), "--out", str(out),
                             "--jobs", "2")
     assert rc == 1
     end = last_end(out)
-    assert (end["done"], end["failed"]) == (2, 1)
-    assert "'loud' is not a number" in end["failures"][0]["reason"]
+    assert (end["done"], end["failed"]) == (2, 2)
+    reasons = {f["take"]: f["reason"] for f in end["failures"]}
+    assert "'loud' is not a number" in reasons["row 4: a.wav"]
+    assert "put quotes around cells that contain commas" in reasons["row 5: a.wav"]
 
     # The same takes through `liftmag learn` and `liftmag process`, as a user would.
     model = tmp_path / "tone.npz"

@@ -21,7 +21,8 @@ HELP = (
     "channel suffix (--group-by-suffix '_(\\d+)$' groups take7_1.wav, take7_2.wav into "
     "take7.wav) or by listing them in one manifest row, separated by ';' or '|'. "
     "Manifest columns: input, output (relative to --out), optional room_tone or "
-    "noise_model, and any processing setting by its field name (e.g. estimator, "
+    "noise_model (input, room-tone and model paths are relative to the manifest's "
+    "folder), and any processing setting by its field name (e.g. estimator, "
     "reduction_limit_db) to override the batch-wide value for that row. "
     "With --cluster, takes go to an existing Dask scheduler instead of local processes "
     "(needs pip install 'liftmag[cluster]' on this machine and every worker): start one "
@@ -29,7 +30,8 @@ HELP = (
     "worker per machine with `dask worker tcp://10.0.0.5:8786 --nthreads 1 --nworkers N`. "
     "Every worker must see the inputs, the room tone or noise model and --out at the "
     "same absolute paths (shared storage), and only one batch may write into a folder "
-    "at a time. " + CAUTION
+    "at a time. Exit status: 0 when every take is done or up to date, 1 when any take "
+    "failed, 2 for a bad request, 130 when interrupted. " + CAUTION
 )
 
 
@@ -93,8 +95,8 @@ def run(args: argparse.Namespace) -> int:
                 jobs, refused, options, on_record,
                 log_header={"settings": base_values, "argv": sys.argv[1:]},
             )
-    except (batch.BatchError, ValueError) as exc:
-        raise UserError(str(exc)) from exc
+    except (batch.BatchError, ValueError, OSError) as exc:
+        raise UserError(batch.one_line(exc)) from exc
     _report(outcome, out_dir / batch.LOG_NAME, args.json)
     if outcome.interrupted:
         return 130
@@ -105,6 +107,8 @@ def _check_request(args: argparse.Namespace, base_values: dict[str, Any]) -> Non
     from liftmag.batch import BatchError
     from liftmag.settings import Settings
 
+    if Path(args.out).exists() and not Path(args.out).is_dir():
+        raise BatchError(f"--out {args.out} is a file; give a folder for the outputs")
     if args.manifest and args.inputs:
         raise BatchError("give input files/folders or --manifest, not both")
     if not args.manifest and not args.inputs:
@@ -114,9 +118,17 @@ def _check_request(args: argparse.Namespace, base_values: dict[str, Any]) -> Non
                          "list a take's stems in its input cell separated by ';'")
     if args.jobs is not None and args.jobs < 1:
         raise BatchError(f"--jobs must be at least 1, got {args.jobs}")
+    if args.subtype and args.subtype.upper() not in _known_subtypes():
+        raise BatchError(f"--subtype {args.subtype}: unknown; e.g. PCM_16, PCM_24, FLOAT")
     if args.jobs is not None and args.cluster:
         raise BatchError("--jobs is for local workers; with --cluster, Dask decides")
     Settings(**base_values)  # refuse bad batch-wide settings before any work
+
+
+def _known_subtypes() -> set[str]:
+    import soundfile as sf
+
+    return set(sf.available_subtypes())
 
 
 def _plans(args: argparse.Namespace, out_dir: Path):
