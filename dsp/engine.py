@@ -57,6 +57,7 @@ from liftmag.settings import Settings
 from liftmag.stft import StftConfig, StreamingStft, stft_config
 
 REFRESH_S = 1.0  # how often derived quantities (whitening, RTF, lifted weights) are renewed
+LIFT_REFRESH_S = 3.0  # how often the lifted noise structure (spikes) is re-analysed
 INITIAL_NOISE_S = 0.25  # a take without a noise model is assumed to start with room tone
 SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann & Hendriks)
 MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
@@ -183,7 +184,12 @@ class Processor:
         self._geometry_g, self._null_w = self._geometry()
         self._derived: _Derived | None = None
         self._noise_cache_key: tuple | None = None
+        self._noise_cache_version = -1
+        self._noise_epoch = -1
+        self._mv_cache_epoch: tuple | None = None
+        self._mv_cache: tuple = ()
         self._noise_cache: tuple = ()
+        self._lift_refresh_frames = max(1, round(LIFT_REFRESH_S / cfg.hop_s))
 
     def _geometry(self) -> tuple[NDArray | None, NDArray | None]:
         s = self.settings
@@ -249,6 +255,8 @@ class Processor:
         self._noise.seed(model)
         self._model_frames = model.frames
         self._derived = None
+        self._noise_cache_key = None  # analyse the new model's structure right away
+        self._mv_cache_epoch = None
 
     # --------------------------------------------------------------------- processing
 
@@ -301,11 +309,15 @@ class Processor:
         """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F)."""
         s = self.settings
         n = self._frame_index
+        if s.estimator == "passthrough":  # nothing to estimate or learn
+            self._frame_index += y.shape[0]
+            self.report.frames += y.shape[0]
+            return self._output(y, y[:, :, s.reference_channel], None)
         learning = self._learning_start(n)
         if learning:
             self._noise.update(y[0], 1.0, 1.0)
-            self._derived = None
-        if self._derived is None or n % self._refresh_frames == 0:
+        learning_ended = n == self._initial_frames and self._model_frames == 0
+        if self._derived is None or n % self._refresh_frames == 0 or learning_ended:
             self._derived = self._refresh()
         der = self._derived
         k_frames = y.shape[0]
@@ -357,7 +369,7 @@ class Processor:
                 p_hat = p_lin[k].copy()
                 noise_eq = der.residual.copy()
                 p_hat[active], noise_eq[active] = self._lifted_mv(lifted_c[k], prior[active], lf)
-                self.report.lifted_bin_frames += len(active)
+                self.report.lifted_bin_frames += lf["n_lifted"]
             elif est == "lifted-nulls":
                 var = lf["null_var_noise"] + prior * lf["null_var_cross"]
                 p_hat = p_unbiased[k]
@@ -473,13 +485,26 @@ class Processor:
                 "fi,fij,fj->f", w, crossterm_lift_covariance(g, cov), w
             )
         elif est not in ("linear-wiener", "mvdr", "passthrough"):
-            lifted.update(self._lifted_derived(cov, lift2, inv, g_white))
+            lifted.update(self._lifted_derived(
+                cov, lift2, inv, g_white, self._learning_start(self._frame_index)
+            ))
         return _Derived(inv, g, g_white, residual, lifted)
 
-    def _lifted_derived(self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray):
+    def _lifted_derived(
+        self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray, learning: bool
+    ) -> dict:
         s = self.settings
-        key = (self._noise.version, s.estimator, s.spike_threshold, s.diagonal_loading)
-        if self._noise_cache_key != key:  # the noise part only changes with the noise moments
+        if learning and s.estimator in ("auto", "lifted-mv"):
+            # The first room tone is still being gathered: stay linear until it is.
+            return {"n_spikes": np.zeros(len(g_white), dtype=int), "active": np.arange(0),
+                    "n_lifted": 0,
+                    "q": np.zeros((0, 1, 1)), "b": np.zeros((0, 1)), "lam": np.zeros((0, 1))}
+        # The fourth-order noise structure changes slowly (it is averaged over many seconds),
+        # so its costly eigen-analysis is renewed every LIFT_REFRESH_S, not at every refresh.
+        epoch = self._frame_index // self._lift_refresh_frames
+        key = (s.estimator, s.spike_threshold, s.diagonal_loading)
+        stale = self._noise.version != self._noise_cache_version and epoch != self._noise_epoch
+        if self._noise_cache_key != key or stale:
             n_eff = self._noise.effective_frames()
             c_white = whitened_lift_covariance(cov, lift2, inv)
             if s.estimator == "lifted-mv":
@@ -492,27 +517,48 @@ class Processor:
             c_reg = c_reg + (s.diagonal_loading * scale)[:, None, None] * np.eye(d)
             self._noise_cache = (c_reg, n_spikes)
             self._noise_cache_key = key
+            self._noise_cache_version = self._noise.version
+            self._noise_epoch = epoch
         c_reg, n_spikes = self._noise_cache
         self.report.spikes_per_bin = n_spikes
-        k_cross = crossterm_lift_covariance(g_white, np.eye(self.n_channels))
+        eye = np.eye(self.n_channels)
         rho_g = rho(outer(g_white))
-        out = {"n_spikes": n_spikes, "c_reg": c_reg, "k_cross": k_cross, "rho_g": rho_g}
         if s.estimator in ("auto", "lifted-mv"):
-            # auto: only bins whose noise shows structure; elsewhere the lift equals linear.
-            active = np.flatnonzero(n_spikes > 0) if s.estimator == "auto" else np.arange(
-                len(n_spikes)
-            )
-            # (C + P K)^-1 for every prior P from one generalised eigen-decomposition:
-            # C = Lc Lc^T, Lc^-1 K Lc^-T = U diag(lam) U^T  =>  Q = U^T Lc^-1.
-            lc_inv = np.linalg.inv(np.linalg.cholesky(c_reg[active]))
-            kw = lc_inv @ k_cross[active] @ np.swapaxes(lc_inv, -1, -2)
-            lam, u = np.linalg.eigh((kw + np.swapaxes(kw, -1, -2)) / 2)
-            q = np.swapaxes(u, -1, -2) @ lc_inv
-            out.update(
-                active=active, q=q, b=np.einsum("fij,fj->fi", q, rho_g[active]),
-                lam=np.maximum(lam, 0.0),
-            )
-        return out
+            if self._mv_cache_epoch != (self._noise_epoch, key):
+                self._mv_cache = self._mv_structure(c_reg, n_spikes, g_white)
+                self._mv_cache_epoch = (self._noise_epoch, key)
+            active, q, lam = self._mv_cache
+            # P_mv = w . (rho - mu) with w = W rho_g / (rho_g . W rho_g) is unbiased for any W,
+            # so W may lag the RTF by a few seconds; b follows the newest RTF at every refresh.
+            return {
+                "n_spikes": n_spikes, "active": active, "q": q,
+                "b": np.einsum("fij,fj->fi", q, rho_g[active]), "lam": lam,
+                "n_lifted": int(np.count_nonzero(n_spikes)) if s.estimator == "auto" else len(q),
+            }
+        k_cross = crossterm_lift_covariance(g_white, eye)
+        return {"n_spikes": n_spikes, "c_reg": c_reg, "k_cross": k_cross, "rho_g": rho_g}
+
+    def _mv_structure(
+        self, c_reg: NDArray, n_spikes: NDArray, g_white: NDArray
+    ) -> tuple[NDArray, NDArray, NDArray]:
+        """Bins using the lift, and the generalised eigenbasis of (C, K) there.
+
+        ``(C + P K)^-1`` for every prior ``P`` comes from one decomposition:
+        ``C = Lc Lc^T``, ``Lc^-1 K Lc^-T = U diag(lam) U^T``, ``Q = U^T Lc^-1``.
+        """
+        # auto lifts only bins with noise structure: elsewhere C is the Gaussian model (the
+        # identity) and the lifted estimate equals the linear one. When most bins lift, it is
+        # cheaper to run the lift everywhere than to gather and scatter the few linear bins.
+        spiky = np.flatnonzero(n_spikes > 0)
+        if self.settings.estimator == "auto" and spiky.size < 0.5 * len(n_spikes):
+            active: NDArray | slice = spiky
+        else:
+            active = slice(None)
+        k_cross = crossterm_lift_covariance(g_white[active], np.eye(self.n_channels))
+        lc_inv = np.linalg.inv(np.linalg.cholesky(c_reg[active]))
+        kw = lc_inv @ k_cross @ np.swapaxes(lc_inv, -1, -2)
+        lam, u = np.linalg.eigh((kw + np.swapaxes(kw, -1, -2)) / 2)
+        return active, np.swapaxes(u, -1, -2) @ lc_inv, np.maximum(lam, 0.0)
 
     @staticmethod
     def _lifted_mv(c: NDArray, prior: NDArray, lf: dict) -> tuple[NDArray, NDArray]:

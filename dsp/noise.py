@@ -239,12 +239,21 @@ def spiked_lift_covariance(
     q = d / n
     upper = threshold * (1 + np.sqrt(q)) ** 2
     lower = np.where(q < 1, (1 - np.sqrt(np.minimum(q, 1))) ** 2 / threshold, 0.0)
-    lam, u = np.linalg.eigh(whitened_cov)
-    keep = (lam > upper[:, None]) | (lam < lower[:, None])
-    # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
-    delta = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE) - 1.0, 0.0)
-    reg = np.eye(d) + np.einsum("fik,fk,fjk->fij", u, delta, u)
-    return reg, keep.sum(axis=-1)
+    # Eigenvalues alone decide which bins have structure; eigenvectors only for those bins.
+    lam_all = np.linalg.eigvalsh(whitened_cov)
+    spiky = np.flatnonzero(
+        np.any((lam_all > upper[:, None]) | (lam_all < lower[:, None]), axis=-1)
+    )
+    reg = np.broadcast_to(np.eye(d), whitened_cov.shape).copy()
+    n_spikes = np.zeros(whitened_cov.shape[0], dtype=int)
+    if spiky.size:
+        lam, u = np.linalg.eigh(whitened_cov[spiky])
+        keep = (lam > upper[spiky, None]) | (lam < lower[spiky, None])
+        # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
+        delta = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE) - 1.0, 0.0)
+        reg[spiky] += np.einsum("fik,fk,fjk->fij", u, delta, u)
+        n_spikes[spiky] = keep.sum(axis=-1)
+    return reg, n_spikes
 
 
 def shrunk_lift_covariance(

@@ -127,10 +127,13 @@ class StreamingStft:
         length, hop = self.config.frame_length, self._hop
         n_frames = spectra.shape[0]
         frames = np.fft.irfft(spectra, n=length, axis=-1) * self._dual
-        out = np.empty((self._out.shape[0], n_frames * hop))
-        for k in range(n_frames):  # overlap-add is sequential by nature; one step per frame
-            self._out += frames[k]
-            out[:, k * hop : (k + 1) * hop] = self._out[:, :hop]
-            self._out = np.roll(self._out, -hop, axis=1)
-            self._out[:, -hop:] = 0.0
-        return out
+        span = (n_frames - 1) * hop + length
+        acc = np.zeros((self._out.shape[0], span))
+        acc[:, :length] = self._out
+        for k in range(n_frames):  # overlap-add: one slice-add per frame
+            acc[:, k * hop : k * hop + length] += frames[k]
+        done = n_frames * hop
+        self._out = acc[:, done : done + length].copy()
+        if self._out.shape[1] < length:
+            self._out = np.pad(self._out, ((0, 0), (0, length - self._out.shape[1])))
+        return acc[:, :done]
