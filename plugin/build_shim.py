@@ -70,13 +70,20 @@ def c_string(text: str) -> str:
 
 
 def libpython_dir() -> str:
-    """Directory of the shared libpython this interpreter was built with."""
-    if not sysconfig.get_config_var("Py_ENABLE_SHARED"):
+    """Directory of the shared libpython of this interpreter (the shim links against it)."""
+    libdir = str(sysconfig.get_config_var("LIBDIR"))
+    name = f"libpython{sysconfig.get_config_var('LDVERSION')}.so"
+    if not (Path(libdir) / name).exists():
         raise RuntimeError(
-            "this Python has no shared libpython; the plugin embeds Python and needs one "
-            "(build Python with --enable-shared)"
+            f"{name} is not in {libdir}: the plugin embeds Python and links against it "
+            "(on Debian install python3-dev; a self-built Python needs --enable-shared)"
         )
-    return str(sysconfig.get_config_var("LIBDIR"))
+    return libdir
+
+
+def python_headers() -> Path:
+    """Python.h of this interpreter (Debian: python3-dev)."""
+    return Path(sysconfig.get_paths()["include"]) / "Python.h"
 
 
 def make_ffi(venv_python: str, plugins: Sequence[tuple[str, int]], n_controls: int,

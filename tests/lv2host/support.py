@@ -39,6 +39,14 @@ def missing_tools() -> list[str]:
         missing.append("gcc")
     if not Path("/usr/include/lv2/core/lv2.h").is_file():
         missing.append("LV2 headers (lv2-dev)")
+    # Building the shim also needs Python's headers and shared library (Debian: python3-dev).
+    shim = build_module().plugin_module("build_shim")
+    if not shim.python_headers().is_file():
+        missing.append("Python.h (python3-dev)")
+    try:
+        shim.libpython_dir()
+    except RuntimeError:
+        missing.append("shared libpython (python3-dev)")
     return missing
 
 
