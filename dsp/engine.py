@@ -25,8 +25,9 @@ Derived quantities (whitening, RTF, MVDR weights, lifted transforms) are refresh
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
@@ -75,11 +76,25 @@ class EngineReport:
     lifted_bin_frames: int = 0
     bin_frames: int = 0
     spikes_per_bin: NDArray | None = None
-    notes: list[str] = field(default_factory=list)
+    lifted_frames_per_bin: NDArray | None = None  # frames in which each bin used the lift
 
     @property
     def lifted_fraction(self) -> float:
         return self.lifted_bin_frames / self.bin_frames if self.bin_frames else 0.0
+
+    def lifted_share_by_band(self, frequencies_hz: NDArray) -> list[tuple[float, float, float]]:
+        """Share of frames using the lift per octave band: ``(low_hz, high_hz, share)``."""
+        if self.lifted_frames_per_bin is None or self.frames == 0:
+            return []
+        edges = [0.0, 125.0, 250.0, 500.0, 1000.0, 2000.0, 4000.0, 8000.0, 16000.0, np.inf]
+        out = []
+        nyquist = float(frequencies_hz[-1])
+        for lo, hi in itertools.pairwise(edges):
+            band = (frequencies_hz >= lo) & (frequencies_hz < hi)
+            if band.any() and lo < nyquist:
+                share = float(self.lifted_frames_per_bin[band].mean()) / self.frames
+                out.append((lo, min(hi, nyquist), share))
+        return out
 
 
 @dataclass(frozen=True)
@@ -180,7 +195,9 @@ class Processor:
         self._prev_amp_sq = np.zeros(f)
         self._spp_smooth = np.zeros(f)
         self._model_frames = 0.0
-        self.report = EngineReport(spikes_per_bin=np.zeros(f, dtype=int))
+        self.report = EngineReport(
+            spikes_per_bin=np.zeros(f, dtype=int), lifted_frames_per_bin=np.zeros(f, dtype=int)
+        )
         self._geometry_g, self._null_w = self._geometry()
         self._derived: _Derived | None = None
         self._noise_cache_key: tuple | None = None
@@ -355,6 +372,8 @@ class Processor:
                 "fij,kfj->kfi", lf["q"], lift_snapshots(yw[:, active]) - mu_white,
                 optimize=True,
             )
+            lifted_bins = lf["n_spikes"] > 0 if est == "auto" else np.ones(len(p_lin[0]), bool)
+            self.report.lifted_frames_per_bin[lifted_bins] += k_frames
         amp = np.empty(p_lin.shape)
         floor_snr = 10 ** (MIN_PRIOR_SNR_DB / 10)
         for k in range(k_frames):  # the decision-directed prior is recursive in time
@@ -375,10 +394,12 @@ class Processor:
                 p_hat = p_unbiased[k]
                 noise_eq = np.sqrt(prior**2 + np.maximum(var, 0.0)) - prior
                 self.report.lifted_bin_frames += len(p_hat)
+                self.report.lifted_frames_per_bin += 1
             else:
                 p_hat = self._lifted_mmse(yw[k], prior, der, mvdr_power[k])
                 noise_eq = None
                 self.report.lifted_bin_frames += len(p_hat)
+                self.report.lifted_frames_per_bin += 1
             amp[k] = self._post_stage(p_hat, noise_eq)
 
         floor = 10 ** (-s.reduction_limit_db / 20) * np.abs(y_ref)

@@ -40,6 +40,7 @@ class ProcessResult:
     output_mode: str
     noise_source: str
     lifted_fraction: float
+    lifted_share_by_band: tuple[tuple[float, float, float], ...]
     latency_samples: int
     clipped_samples: int
     peak_dbfs: float
@@ -55,6 +56,10 @@ class ProcessResult:
         d["realtime_factor"] = round(self.realtime_factor, 2)
         for k in ("inputs", "carried_chunks", "warnings"):
             d[k] = list(d[k])
+        d["lifted_share_by_band"] = [
+            {"low_hz": lo, "high_hz": hi, "share": round(share, 3)}
+            for lo, hi, share in self.lifted_share_by_band
+        ]
         return d
 
 
@@ -203,7 +208,9 @@ def process_file(
         frames=report.frames_written, duration_s=total / fs,
         elapsed_s=time.perf_counter() - started, estimator=settings.estimator,
         output_mode=settings.output_mode, noise_source=noise_desc,
-        lifted_fraction=proc.report.lifted_fraction, latency_samples=proc.latency_samples,
+        lifted_fraction=proc.report.lifted_fraction,
+        lifted_share_by_band=tuple(proc.report.lifted_share_by_band(proc.config.frequencies_hz)),
+        latency_samples=proc.latency_samples,
         clipped_samples=report.clipped_samples, peak_dbfs=report.peak_dbfs,
         carried_chunks=tuple(report.carried_chunks), warnings=tuple(warnings),
     )

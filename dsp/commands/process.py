@@ -63,14 +63,20 @@ def run(args: argparse.Namespace) -> int:
         print(f"liftmag process: warning: {warning}", file=sys.stderr)
     if args.json:
         print_json(result.to_dict())
-    else:
-        lifted = (
-            f"; lift used in {100 * result.lifted_fraction:.0f} % of bins"
-            if settings.estimator == "auto" else ""
+        return 0
+    lifted = (
+        f"; lift used in {100 * result.lifted_fraction:.0f} % of bins"
+        if settings.estimator == "auto" else ""
+    )
+    print(
+        f"wrote {result.output} ({result.channels_out} ch, {result.duration_s:.1f} s, "
+        f"{settings.estimator}, {settings.output_mode}{lifted}; noise: "
+        f"{result.noise_source}; {result.realtime_factor:.0f}x real time)"
+    )
+    if settings.estimator == "auto" and result.lifted_share_by_band:
+        # Where the lift was used: bands whose noise showed non-Gaussian structure.
+        bands = ", ".join(
+            f"{lo:g}-{hi:g} Hz {100 * share:.0f} %" for lo, hi, share in result.lifted_share_by_band
         )
-        print(
-            f"wrote {result.output} ({result.channels_out} ch, {result.duration_s:.1f} s, "
-            f"{settings.estimator}, {settings.output_mode}{lifted}; noise: "
-            f"{result.noise_source}; {result.realtime_factor:.0f}x real time)"
-        )
+        print(f"  lifted estimator, share of frames per band: {bands}")
     return 0
