@@ -7,7 +7,8 @@ worker start-up count as a user would feel them:
 * local workers: ``--jobs 1`` and ``--jobs 2``;
 * ``--cluster`` on a Dask ``LocalCluster`` with 2 single-threaded worker processes on
   loopback (cluster start-up is not counted; a real cluster is already running);
-* the re-run that finds every take up to date (hashing and records only).
+* the re-run that finds every take up to date (hashing and records only);
+* a control: the speed-up 2 processes get on a plain CPU loop, to read the rest against.
 
 BLAS threads are pinned to 1 so that "workers" means cores. The machine may be shared:
 read the figures as indications, and compare rows taken in the same run.
@@ -51,6 +52,32 @@ def make_takes(folder: Path, n_takes: int, seconds: float) -> float:
         sf.write(folder / f"take{i:02d}.wav", (0.9 / peak) * long[:, start : start + n].T, fs,
                  subtype="PCM_16")
     return n_takes * n / fs
+
+
+def _spin(n: int) -> float:
+    t0 = time.perf_counter()
+    total = 0
+    for i in range(n):
+        total += i * i
+    return time.perf_counter() - t0
+
+
+def parallel_control(loops: int = 4_000_000, tasks: int = 4) -> float:
+    """Speed-up that 2 processes get over 1 on a plain CPU loop, on this machine, now.
+
+    On a shared machine this says how much of the second core was free, so the batch
+    figures can be read against it.
+    """
+    from concurrent.futures import ProcessPoolExecutor
+
+    walls = []
+    for workers in (1, 2):
+        with ProcessPoolExecutor(workers) as pool:
+            list(pool.map(_spin, [1000] * workers))  # start the processes first
+            t0 = time.perf_counter()
+            list(pool.map(_spin, [loops] * tasks))
+            walls.append(time.perf_counter() - t0)
+    return walls[0] / walls[1]
 
 
 def run_batch(src: Path, out: Path, *extra: str) -> tuple[float, dict]:
@@ -103,7 +130,8 @@ def main() -> int:
               f"{rate:.3f} |")
     local1, local2, dask2 = rows[0][1], rows[1][1], rows[3][1]
     print()
-    print(f"speed-up of 2 local workers over 1: {local1 / local2:.2f}x")
+    print(f"speed-up of 2 local workers over 1: {local1 / local2:.2f}x (control: a plain "
+          f"CPU loop gets {parallel_control():.2f}x from 2 processes on this machine now)")
     print(f"Dask path against 2 local workers: {100 * (dask2 - local2) / local2:+.1f} % wall "
           f"time ({dask2 - local2:+.1f} s over {args.takes} takes)")
     same = all(
