@@ -2,8 +2,17 @@
 # Installs the Debian packages that tests and the plugin build need.
 # lilv-utils: lv2ls, lv2info, lv2apply (the reference LV2 host tools)
 # lv2-dev: LV2 headers and lv2_validate; sordi: RDF parser lv2_validate calls
+# binutils: readelf and nm, which the plugin tests use to check the shared object
 set -euo pipefail
-needed=(lilv-utils lv2-dev sordi)
+needed=(lilv-utils lv2-dev sordi binutils)
+# The plugin shim is C compiled against the Python that runs the venv: it needs a compiler and
+# that Python's headers and shared library (Debian's python3-dev when the venv comes from
+# Debian's python3; interpreters built elsewhere, e.g. with pyenv, ship their own).
+command -v cc >/dev/null 2>&1 || needed+=(build-essential)
+py=${PYTHON:-python3}
+if ! "$py" -c 'import os, sysconfig; raise SystemExit(not os.path.exists(os.path.join(sysconfig.get_paths()["include"], "Python.h")))' 2>/dev/null; then
+  needed+=(python3-dev)
+fi
 missing=()
 for pkg in "${needed[@]}"; do
   dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed" || missing+=("$pkg")
