@@ -50,6 +50,7 @@ from liftmag.lift import (
 from liftmag.noise import (
     MomentAccumulator,
     NoiseModel,
+    lift_whitening,
     shrunk_lift_covariance,
     spiked_lift_covariance,
     whitened_lift_covariance,
@@ -669,31 +670,30 @@ def run_processor(
     zeros, so exactly ``n_samples`` aligned samples come out. With ``sink`` nothing is kept
     in memory (files of any length); without it the output is returned as one array.
     """
-    skip = proc.latency_samples
     kept: list[NDArray] = []
     emit = sink if sink is not None else kept.append
-    done = 0
-    for block in blocks:
+    skip = proc.latency_samples
+
+    def push(block: NDArray) -> None:
+        nonlocal skip
         out = proc.push(block)
-        done += block.shape[1]
-        if skip:
+        if skip:  # the first latency_samples outputs precede the input's first sample
             cut = min(skip, out.shape[1])
             out, skip = out[:, cut:], skip - cut
         if out.shape[1]:
             emit(out)
+
+    done = 0
+    for block in blocks:
+        push(block)
+        done += block.shape[1]
         if progress is not None:
             progress(done)
     remaining = proc.latency_samples
-    tail_block = 1 << 15
-    while remaining > 0:
-        n = min(tail_block, remaining)
-        out = proc.push(np.zeros((proc.n_channels, n)))
+    while remaining > 0:  # flush the tail with silence
+        n = min(1 << 15, remaining)
+        push(np.zeros((proc.n_channels, n)))
         remaining -= n
-        if skip:
-            cut = min(skip, out.shape[1])
-            out, skip = out[:, cut:], skip - cut
-        if out.shape[1]:
-            emit(out)
     if sink is not None:
         return None
     if not kept:
@@ -763,8 +763,6 @@ def model_weights_at_bin(
     draw the patterns of the learned estimators.
     """
     settings = settings or Settings()
-    from liftmag.lift import lift_transform
-
     cov = model.covariance[bin_index : bin_index + 1]
     lift2 = model.lift_second_moment[bin_index : bin_index + 1]
     _, inv = _chol_inverse(cov, settings.diagonal_loading)
@@ -784,8 +782,5 @@ def model_weights_at_bin(
     w_white, _ = lifted_mv_weights(rho_g, c_reg, k_cross, np.array([speech_power]),
                                    settings.diagonal_loading)
     # w . rho(y~ y~^H) = w . B rho(y y^H): the raw-domain weights are B^T w.
-    t = lift_transform(m)
-    kron = (np.conj(inv)[:, :, None, :, None] * inv[:, None, :, None, :]).reshape(1, m * m, m * m)
-    b = np.real(t @ kron @ t.conj().T)
-    w_raw = np.einsum("fij,fi->fj", b, w_white)
+    w_raw = np.einsum("fij,fi->fj", lift_whitening(inv), w_white)
     return h_mvdr[0], w_raw[0], int(n_spikes[0])
