@@ -996,7 +996,12 @@ def _stop_workers(procs: Sequence[Any], grace_s: float = 0.0) -> None:
             proc.join()
 
 
-def run_on_cluster(jobs: Sequence[Job], address: str, on_record: RecordSink) -> None:
+def run_on_cluster(
+    jobs: Sequence[Job],
+    address: str,
+    on_record: RecordSink,
+    on_note: Callable[[str], None] = lambda text: None,
+) -> None:
     """Send each job to an existing Dask distributed scheduler and gather the records.
 
     Workers must see the inputs and the output folder at the same absolute paths (shared
@@ -1016,6 +1021,7 @@ def run_on_cluster(jobs: Sequence[Job], address: str, on_record: RecordSink) -> 
         raise BatchError(f"cannot reach a Dask scheduler at {address}: {one_line(exc)}") from exc
     run_id = secrets.token_hex(4)
     with client:
+        _check_worker_allocator(client, on_note)
         futures = {
             client.submit(run_job, job, key=f"liftmag-take-{run_id}-{i}", pure=False): job
             for i, job in enumerate(jobs)
@@ -1036,6 +1042,31 @@ def run_on_cluster(jobs: Sequence[Job], address: str, on_record: RecordSink) -> 
             # outputs are complete and recorded, so the next run skips them.
             client.cancel(list(futures))
             raise
+
+
+def _trim_threshold() -> str | None:
+    return os.environ.get("MALLOC_TRIM_THRESHOLD_")
+
+
+def _check_worker_allocator(client, on_note: Callable[[str], None]) -> None:
+    """Warn when workers run with a fixed glibc trim threshold (Dask's nanny default).
+
+    A fixed threshold turns off glibc's adaptive thresholds, so each large temporary array
+    is mapped and unmapped afresh; bench_batch.py measured takes running about twice as
+    slowly that way.
+    """
+    try:
+        values = set(client.run(_trim_threshold).values())
+    except Exception:  # a worker that cannot answer is not a reason to stop the batch
+        return
+    set_values = sorted(v for v in values if v is not None)
+    if set_values:
+        on_note(
+            f"the Dask workers run with MALLOC_TRIM_THRESHOLD_={', '.join(set_values)} (the "
+            "nanny's default), which makes liftmag about half as fast; start them with "
+            "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_ set to null in "
+            "their Dask config, or with --no-nanny"
+        )
 
 
 # ------------------------------------------------------------------------ the batch
@@ -1083,6 +1114,7 @@ def run_batch(
     options: BatchOptions,
     on_record: RecordSink = lambda record: None,
     log_header: dict[str, Any] | None = None,
+    on_note: Callable[[str], None] = lambda text: None,
 ) -> BatchOutcome:
     """Run the jobs, log every outcome, and return the outcome.
 
@@ -1102,6 +1134,10 @@ def run_batch(
         log.write("take", **record.to_dict())
         on_record(record)
 
+    def note(text: str) -> None:
+        log.write("note", text=text)
+        on_note(text)
+
     with batch_lock(out_dir), _sigterm_as_interrupt():
         sweep_partials(outputs)  # left by a run whose workers were killed
         log.write(
@@ -1114,7 +1150,7 @@ def run_batch(
         interrupted = False
         try:
             if options.cluster:
-                run_on_cluster(jobs, options.cluster, take_done)
+                run_on_cluster(jobs, options.cluster, take_done, note)
             elif jobs:
                 run_local(jobs, options.n_workers, take_done)
         except KeyboardInterrupt:

@@ -30,7 +30,10 @@ HELP = (
     "worker per machine with `dask worker tcp://10.0.0.5:8786 --nthreads 1 --nworkers N`. "
     "Every worker must see the inputs, the room tone or noise model and --out at the "
     "same absolute paths (shared storage), and only one batch may write into a folder "
-    "at a time. Exit status: 0 when every take is done or up to date, 1 when any take "
+    "at a time. Dask's worker nanny sets MALLOC_TRIM_THRESHOLD_=65536, which halves "
+    "liftmag's speed; set distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_ to "
+    "null in the workers' Dask config (or start them with --no-nanny). "
+    "Exit status: 0 when every take is done or up to date, 1 when any take "
     "failed, 2 for a bad request, 130 when interrupted. " + CAUTION
 )
 
@@ -94,6 +97,7 @@ def run(args: argparse.Namespace) -> int:
             outcome = batch.run_batch(
                 jobs, refused, options, on_record,
                 log_header={"settings": base_values, "argv": sys.argv[1:]},
+                on_note=lambda text: print(f"liftmag batch: note: {text}", file=sys.stderr),
             )
     except (batch.BatchError, ValueError, OSError) as exc:
         raise UserError(batch.one_line(exc)) from exc
