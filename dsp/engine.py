@@ -120,6 +120,29 @@ def _chol_inverse(phi: NDArray, loading: float) -> tuple[NDArray, NDArray]:
     return chol, inv
 
 
+def _principal_eigenpair(h: NDArray) -> tuple[NDArray, NDArray]:
+    """Largest eigenvalue and its unit eigenvector of Hermitian matrices (F, M, M).
+
+    Two microphones use the closed form of a 2 x 2 Hermitian matrix [[a, b], [b*, d]]:
+    ``lam = (a + d)/2 + sqrt(((a - d)/2)^2 + |b|^2)``, eigenvector ``[b, lam - a]`` (or
+    ``[lam - d, b*]``, whichever is better conditioned); LAPACK's per-matrix overhead would
+    dominate otherwise.
+    """
+    if h.shape[-1] != 2:
+        lam, vec = np.linalg.eigh(h)
+        return lam[:, -1], vec[:, :, -1]
+    a, d, b = h[:, 0, 0].real, h[:, 1, 1].real, h[:, 0, 1]
+    half = (a - d) / 2
+    lam = (a + d) / 2 + np.sqrt(half**2 + np.abs(b) ** 2)
+    first = np.stack([b, (lam - a).astype(complex)], axis=-1)
+    second = np.stack([(lam - d).astype(complex), np.conj(b)], axis=-1)
+    use_first = (lam - a) >= (lam - d)
+    vec = np.where(use_first[:, None], first, second)
+    norm = np.linalg.norm(vec, axis=-1, keepdims=True)
+    vec = np.where(norm > 0, vec / np.where(norm > 0, norm, 1.0), np.array([1.0, 0.0]))
+    return lam, vec
+
+
 def _rtf_from_data(
     speech_cov: NDArray, chol: NDArray, inv: NDArray, reference: int, fallback: NDArray
 ) -> NDArray:
@@ -130,10 +153,10 @@ def _rtf_from_data(
     """
     white = inv @ speech_cov @ np.conj(np.swapaxes(inv, -1, -2))
     white = (white + np.conj(np.swapaxes(white, -1, -2))) / 2
-    lam, vec = np.linalg.eigh(white)
-    g = np.einsum("fij,fj->fi", chol, vec[:, :, -1])
+    top, principal = _principal_eigenpair(white)
+    g = np.einsum("fij,fj->fi", chol, principal)
     ref = g[:, reference]
-    ok = (lam[:, -1] > 2.0) & (np.abs(ref) > 1e-6 * np.linalg.norm(g, axis=-1))
+    ok = (top > 2.0) & (np.abs(ref) > 1e-6 * np.linalg.norm(g, axis=-1))
     g = np.where(ok[:, None], g / np.where(ok, ref, 1.0)[:, None], fallback)
     return g
 
@@ -589,9 +612,9 @@ class Processor:
         ``c = Q (rho(y~ y~^H) - rho(I))`` in the generalised eigenbasis of (C, K), where
         ``(C + P K)^-1 = Q^T diag(1 / (1 + P lam)) Q``.
         """
-        r = 1.0 / (1.0 + prior[:, None] * lf["lam"])
-        den = np.maximum(np.sum(lf["b"] ** 2 * r, axis=-1), 1e-300)
-        p_hat = np.sum(lf["b"] * r * c, axis=-1) / den
+        br = lf["b"] / (1.0 + prior[:, None] * lf["lam"])
+        den = np.maximum(np.einsum("fd,fd->f", br, lf["b"]), 1e-300)
+        p_hat = np.einsum("fd,fd->f", br, c) / den
         variance = 1.0 / den
         # Gaussian equivalent: Var = sigma^4 + 2 P sigma^2  =>  sigma^2 = sqrt(P^2 + Var) - P.
         noise_eq = np.sqrt(prior**2 + variance) - prior
@@ -607,26 +630,30 @@ class Processor:
         rho_g, c_reg, k = lf["rho_g"], lf["c_reg"], lf["k_cross"]
         mu = np.broadcast_to(mu_white, rho_g.shape)
         est = self.settings.estimator
+        # Loud speech over faint noise makes these second-moment matrices ill-conditioned
+        # (speech terms ~P^2 against noise ~1); loading relative to their scale keeps the
+        # solve defined.
+        loading = max(self.settings.diagonal_loading, 1e-9)
         if est == "lifted-wiener":
             # Complex Gaussian speech: E[P^2] = 2 lambda^2.
-            w = lifted_wiener_weights(rho_g, mu, c_reg, k, prior, 2 * prior**2)
+            w = lifted_wiener_weights(rho_g, mu, c_reg, k, prior, 2 * prior**2, loading)
             return np.einsum("fd,fd->f", w, rho_y)
         if est == "lifted-affine":
             c_noise = c_reg + prior[:, None, None] * k
-            w = lifted_affine_weights(rho_g, c_noise, prior**2)
+            w = lifted_affine_weights(rho_g, c_noise, prior**2, loading)
             mean = prior[:, None] * rho_g + mu
             return prior + np.einsum("fd,fd->f", w, rho_y - mean)
         # lifted-wiener-fixed: the magnitude is fixed within the frame; refine it a few times.
         a2 = prior
         for _ in range(3):
-            w = quadratic_wiener_fixed_weights(a2, rho_g, mu, c_reg, k)
+            w = quadratic_wiener_fixed_weights(a2, rho_g, mu, c_reg, k, loading)
             est_p = np.einsum("fd,fd->f", w, rho_y - mu) / np.maximum(
                 np.einsum("fd,fd->f", w, rho_g), 1e-300
             )
             # One snapshot per frame: keep the iterate within what the frame can hold.
             lowest = 10 ** (MIN_PRIOR_SNR_DB / 10) * der.residual
             a2 = np.clip(est_p, lowest, 4 * mvdr_power + prior)
-        w = quadratic_wiener_fixed_weights(a2, rho_g, mu, c_reg, k)
+        w = quadratic_wiener_fixed_weights(a2, rho_g, mu, c_reg, k, loading)
         return np.einsum("fd,fd->f", w, rho_y)
 
 
