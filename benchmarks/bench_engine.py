@@ -20,7 +20,6 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ[_var] = "1"
 
 import argparse  # noqa: E402
-import resource  # noqa: E402
 import subprocess  # noqa: E402
 import sys  # noqa: E402
 import tempfile  # noqa: E402
@@ -106,12 +105,16 @@ def memory(minutes_list: list[float]) -> None:
             out = Path(tmp) / "out.wav"
             out.unlink(missing_ok=True)
             t0 = time.perf_counter()
-            subprocess.run(
+            child = subprocess.Popen(
                 [sys.executable, "-m", "liftmag.cli", "process", str(src), "-o", str(out)],
-                check=True, stdout=subprocess.DEVNULL,
+                stdout=subprocess.DEVNULL,
             )
+            _, status, usage = os.wait4(child.pid, 0)  # this child's own peak, not the max
+            child.returncode = os.waitstatus_to_exitcode(status)
+            if child.returncode:
+                raise SystemExit(f"liftmag process failed on {src}")
             wall = time.perf_counter() - t0
-            peak_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+            peak_mb = usage.ru_maxrss / 1024
             print(f"| 48 kHz stereo PCM_16 | {minutes:g} min | {peak_mb:.0f} MB | {wall:.0f} s |")
             src.unlink()
 
