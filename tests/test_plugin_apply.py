@@ -31,11 +31,13 @@ def bundle() -> Path:
 
 @pytest.fixture(scope="module")
 def take() -> tuple[np.ndarray, int, np.ndarray]:
-    """The demo's simulated two-mic take (16 kHz), its first 6 s, as float32 values."""
-    from liftmag.scenes import demo_scene
+    """A two-mic take in an image-source room (pyroomacoustics; Allen & Berkley 1979): two
+    directional interferers from opposite sides plus diffuse noise, 0 dB SNR, talker at
+    broadside; its first 7 s (1.5 s of noise, then speech), as float32 values."""
+    from rooms import make_room_scene
 
-    scene = demo_scene(seed=3, snr_db=0.0)
-    n = 6 * scene.fs_hz
+    scene = make_room_scene("two-interferers-diffuse", 2, snr_db=0.0, seed=3)
+    n = 7 * scene.fs_hz
     x = scene.mixture[:, :n].astype(np.float32).astype(np.float64)
     return x, scene.fs_hz, scene.target_image[:n]
 
