@@ -31,6 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy.signal import lfilter
 
 from liftmag.estimators import (
     lifted_affine_weights,
@@ -409,9 +410,14 @@ class Processor:
                 p_hat = p_unbiased[k]
                 noise_eq = der.residual if est == "linear-wiener" else lf["noise_ds"]
             elif est in ("auto", "lifted-mv"):
-                p_hat = p_lin[k].copy()
-                noise_eq = der.residual.copy()
-                p_hat[active], noise_eq[active] = self._lifted_mv(lifted_c[k], prior[active], lf)
+                if isinstance(active, slice):  # every bin lifts
+                    p_hat, noise_eq = self._lifted_mv(lifted_c[k], prior, lf)
+                else:
+                    p_hat = p_lin[k].copy()
+                    noise_eq = der.residual.copy()
+                    p_hat[active], noise_eq[active] = self._lifted_mv(
+                        lifted_c[k], prior[active], lf
+                    )
                 self.report.lifted_bin_frames += lf["n_lifted"]
             elif est == "lifted-nulls":
                 var = lf["null_var_noise"] + prior * lf["null_var_cross"]
@@ -480,11 +486,11 @@ class Processor:
         s = self.settings
         xi = 10 ** (SPEECH_PRIOR_SNR_DB / 10)
         spp = 1.0 / (1.0 + (1.0 + xi) * np.exp(-np.minimum(gamma * xi / (1.0 + xi), 700.0)))
-        probability = np.empty_like(spp)
-        for k in range(y.shape[0]):  # recursive in time; cheap elementwise steps
-            self._spp_smooth = 0.9 * self._spp_smooth + 0.1 * spp[k]
-            # Cap a long-held presence so the noise estimate cannot stagnate.
-            probability[k] = np.where(self._spp_smooth > 0.99, np.minimum(spp[k], 0.99), spp[k])
+        # First-order recursive smoothing over frames, p_k = 0.9 p_(k-1) + 0.1 spp_k.
+        smooth = lfilter([0.1], [1.0, -0.9], spp, axis=0, zi=0.9 * self._spp_smooth[None])[0]
+        self._spp_smooth = smooth[-1]
+        # Cap a long-held presence so the noise estimate cannot stagnate.
+        probability = np.where(smooth > 0.99, np.minimum(spp, 0.99), spp)
         if s.noise_mode == "track":
             self._noise.update(y, 1.0 - probability, self._noise_forgetting)
         elif s.noise_mode == "learn":
