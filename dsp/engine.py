@@ -432,14 +432,16 @@ class Processor:
                 self.report.lifted_frames_per_bin += 1
             amp[k] = self._post_stage(p_hat, noise_eq)
 
-        floor = 10 ** (-s.reduction_limit_db / 20) * np.abs(y_ref)
-        ceiling = np.maximum(np.abs(y_ref), np.abs(phase_ref))
-        amp = np.clip(amp, floor, np.maximum(ceiling, floor))
-        phase_src = phase_ref if s.phase_source == "mvdr" else y_ref
-        magnitude = np.abs(phase_src)
+        abs_ref = np.abs(y_ref)
+        abs_phase = np.sqrt(mvdr_power) if phase_ref is z else np.abs(phase_ref)
+        floor = 10 ** (-s.reduction_limit_db / 20) * abs_ref
+        # Never louder than both the reference and the beamformer output; never below the limit.
+        amp = np.clip(amp, floor, np.maximum(np.maximum(abs_ref, abs_phase), floor))
+        phase_src, magnitude = (
+            (phase_ref, abs_phase) if s.phase_source == "mvdr" else (y_ref, abs_ref)
+        )
         unit = np.where(magnitude > 0, phase_src / np.maximum(magnitude, 1e-300), 1.0)
-        cleaned = amp * unit
-        return self._output(y, cleaned, amp / np.maximum(np.abs(y_ref), 1e-300))
+        return self._output(y, amp * unit, amp / np.maximum(abs_ref, 1e-300))
 
     def _output(
         self, y: NDArray, cleaned: NDArray, gain: NDArray | None
