@@ -59,12 +59,13 @@ from liftmag.noise import (
 from liftmag.settings import Settings
 from liftmag.stft import StftConfig, StreamingStft, stft_config
 
+TRACK_STRIDE = 2  # running statistics use every second frame (see Processor._track)
 REFRESH_S = 1.0  # how often derived quantities (whitening, RTF, lifted weights) are renewed
 LIFT_REFRESH_S = 3.0  # how often the lifted noise structure (spikes) is re-analysed
 INITIAL_NOISE_S = 0.25  # a take without a noise model is assumed to start with room tone
 SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann & Hendriks)
 MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
-MIN_SPEECH_FRAMES = 8.0  # speech evidence needed before the RTF is taken from data
+MIN_SPEECH_FRAMES = 4.0  # speech-weighted frames a bin needs before its RTF comes from data
 ABSOLUTE_POWER_FLOOR = 1e-20  # keeps digital silence from making singular covariances
 
 SHRUNK_ESTIMATORS = ("lifted-wiener", "lifted-affine", "lifted-wiener-fixed")
@@ -493,12 +494,18 @@ class Processor:
         self._spp_smooth = smooth[-1]
         # Cap a long-held presence so the noise estimate cannot stagnate.
         probability = np.where(smooth > 0.99, np.minimum(spp, 0.99), spp)
+        # Frames overlap by 75 %, so neighbours carry nearly the same information: the running
+        # statistics take every second frame (by stream index, so blocks do not matter), with
+        # the forgetting squared to keep their memory in seconds. This halves the cost and
+        # keeps the effective frame count honest for the Marchenko-Pastur edges.
+        first = (-self._frame_index) % TRACK_STRIDE
+        y_used, p_used = y[first::TRACK_STRIDE], probability[first::TRACK_STRIDE]
         if s.noise_mode == "track":
-            self._noise.update(y, 1.0 - probability, self._noise_forgetting)
+            self._noise.update(y_used, 1.0 - p_used, self._noise_forgetting**TRACK_STRIDE)
         elif s.noise_mode == "learn":
             self._noise.update(y, 1.0, 1.0)
         if s.target_deg is None:
-            self._speech.update(y, probability, self._speech_forgetting)
+            self._speech.update(y_used, p_used, self._speech_forgetting**TRACK_STRIDE)
 
     # ------------------------------------------------------------------ derived values
 
@@ -514,12 +521,14 @@ class Processor:
         fallback = np.ones((f, m), dtype=complex)
         if self._geometry_g is not None:
             g = self._geometry_g
-        elif self._speech.weight.min() >= MIN_SPEECH_FRAMES * (1 - self._speech_forgetting):
-            speech_cov, _ = self._speech.means()
-            previous = self._derived.g if self._derived is not None else fallback
-            g = _rtf_from_data(speech_cov, chol, inv, s.reference_channel, previous)
         else:
-            g = self._derived.g if self._derived is not None else fallback
+            previous = self._derived.g if self._derived is not None else fallback
+            g = previous
+            evidence = self._speech.weight >= MIN_SPEECH_FRAMES  # speech-weighted frames per bin
+            if evidence.any():
+                speech_cov, _ = self._speech.means()
+                g = _rtf_from_data(speech_cov, chol, inv, s.reference_channel, previous)
+                g = np.where(evidence[:, None], g, previous)
         g_white = np.einsum("fij,fj->fi", inv, g)
         residual = 1.0 / np.maximum(np.sum(np.abs(g_white) ** 2, axis=-1), 1e-300)
         lifted: dict = {}
