@@ -59,6 +59,7 @@ from liftmag.noise import (
 from liftmag.settings import Settings
 from liftmag.stft import StftConfig, StreamingStft, stft_config
 
+MIN_FRAMES_PER_LIFT_DIM = 4  # auto lifts a bin only with >= 4 M^2 effective noise frames
 TRACK_STRIDE = 2  # running statistics use every second frame (see Processor._track)
 REFRESH_S = 1.0  # how often derived quantities (whitening, RTF, lifted weights) are renewed
 LIFT_REFRESH_S = 3.0  # how often the lifted noise structure (spikes) is re-analysed
@@ -574,6 +575,11 @@ class Processor:
                 n_spikes = np.zeros(len(n_eff), dtype=int)
             else:
                 c_reg, n_spikes = spiked_lift_covariance(c_white, n_eff, s.spike_threshold)
+                if s.estimator == "auto":
+                    # Too few frames for M^4 fourth-order entries: trust no structure yet.
+                    thin = n_eff < MIN_FRAMES_PER_LIFT_DIM * c_white.shape[-1]
+                    n_spikes = np.where(thin, 0, n_spikes)
+                    c_reg = np.where(thin[:, None, None], np.eye(c_white.shape[-1]), c_reg)
             d = c_reg.shape[-1]
             scale = np.trace(c_reg, axis1=-2, axis2=-1) / d
             c_reg = c_reg + (s.diagonal_loading * scale)[:, None, None] * np.eye(d)
