@@ -32,6 +32,7 @@ from liftmag.engine import process_array  # noqa: E402
 from liftmag.settings import ESTIMATORS, Settings  # noqa: E402
 
 FS = 48000
+REPEATS = 3
 
 
 def scene_48k(n_mics: int, seconds: float) -> tuple[np.ndarray, np.ndarray]:
@@ -57,7 +58,8 @@ def scene_48k(n_mics: int, seconds: float) -> tuple[np.ndarray, np.ndarray]:
 def speed(seconds: float) -> None:
     from liftmag.engine import NoiseLearner, iter_blocks
 
-    print(f"Real-time factor, {seconds:g} s at {FS} Hz, one core (higher is faster)")
+    print(f"Real-time factor, {seconds:g} s at {FS} Hz, one core, best of {REPEATS} "
+          "(higher is faster)")
     print("| estimator | M = 2, room-tone model | M = 2, tracker | M = 4, room-tone model "
           "| M = 4, tracker |")
     print("|---|---|---|---|---|")
@@ -77,9 +79,12 @@ def speed(seconds: float) -> None:
                                     **extra)
                 take = data[m][0]
                 process_array(take[:, : FS // 2], FS, settings, model)  # warm caches
-                t0 = time.perf_counter()
-                process_array(take, FS, settings, model)
-                row.append(seconds / (time.perf_counter() - t0))
+                best_s = np.inf
+                for _ in range(REPEATS):  # best of a few: the machine is shared
+                    t0 = time.perf_counter()
+                    process_array(take, FS, settings, model)
+                    best_s = min(best_s, time.perf_counter() - t0)
+                row.append(seconds / best_s)
         label = "bare STFT round trip (passthrough)" if estimator == "passthrough" else estimator
         print(f"| {label} | " + " | ".join(f"{r:.1f}x" for r in row) + " |", flush=True)
 
