@@ -39,6 +39,8 @@ def test_streaming_frames_equal_scipy_shorttimefft_on_the_whole_signal():
 
 @pytest.mark.parametrize("fs", [16000, 44100, 48000, 96000])
 def test_passthrough_is_sample_aligned(fs):
+    # Fact of the trade: a processed take must stay sample-aligned with the original so it
+    # can replace it in an edit without drifting against picture or other tracks.
     x = _noise(2, fs // 2)
     y = process_array(x, fs, Settings(estimator="passthrough"))
     assert y.shape == (1, x.shape[1])
@@ -46,6 +48,7 @@ def test_passthrough_is_sample_aligned(fs):
 
 
 def test_reported_latency_equals_observed_delay():
+    # LV2 Core: a plugin's reported latency is what hosts subtract; it must equal the delay.
     fs = 16000
     proc = Processor(Settings(estimator="passthrough"), fs, 2)
     x = np.zeros((2, 3 * proc.latency_samples))
@@ -78,6 +81,8 @@ def test_every_estimator_and_output_mode_runs_finite_with_the_right_shape():
 
 
 def test_taken_out_plus_cleaned_is_the_reference_channel():
+    # Linearity of the STFT synthesis (overlap-add): the removed part and the cleaned part
+    # must add up to the original, or a listening check of "taken-out" would mislead.
     x = _noise(2, 12000, seed=3)
     cleaned = process_array(x, 16000, Settings(output_mode="cleaned"))
     removed = process_array(x, 16000, Settings(output_mode="taken-out"))
