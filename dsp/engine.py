@@ -62,7 +62,7 @@ from liftmag.stft import StftConfig, StreamingStft, stft_config
 MIN_FRAMES_PER_LIFT_DIM = 4  # auto lifts a bin only with >= 4 M^2 effective noise frames
 TRACK_STRIDE = 2  # running statistics use every second frame (see Processor._track)
 REFRESH_S = 1.0  # how often derived quantities (whitening, RTF, lifted weights) are renewed
-LIFT_REFRESH_S = 3.0  # how often the lifted noise structure (spikes) is re-analysed
+LIFT_REFRESH_S = 6.0  # lifted noise structure re-analysed about once per tracker window (~6 s)
 INITIAL_NOISE_S = 0.25  # a take without a noise model is assumed to start with room tone
 SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann & Hendriks)
 MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
