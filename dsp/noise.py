@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from liftmag.lift import lift_dimension, lift_snapshots, lift_transform
+from liftmag.lift import lift_dimension, lift_snapshots, lift_transform, rho, unrho
 
 FORMAT_VERSION = 1
 MIN_LIFT_EIGENVALUE = 0.01  # floor of a kept eigenvalue, relative to the Gaussian model
@@ -136,7 +136,9 @@ class MomentAccumulator:
 
     def __init__(self, n_bins: int, n_channels: int, with_lift: bool = True) -> None:
         d = lift_dimension(n_channels)
-        self.cov_sum = np.zeros((n_bins, n_channels, n_channels), dtype=complex)
+        # The covariance is kept as its real lift: rho is linear, so the weighted sum of
+        # rho(y y^H) is rho of the weighted sum of y y^H, and it costs a plain weighted sum.
+        self.lift_first = np.zeros((n_bins, d))
         self.lift_sum = np.zeros((n_bins, d, d)) if with_lift else None
         self.weight = np.zeros(n_bins)
         self.weight_sq = np.zeros(n_bins)
@@ -156,11 +158,10 @@ class MomentAccumulator:
         decay = forgetting ** np.arange(k_frames - 1, -1, -1, dtype=float)
         wd = w * decay[:, None]
         keep = forgetting**k_frames
-        self.cov_sum *= keep
-        # Batched (F, M, K) @ (F, K, M): much faster than a three-operand einsum here.
-        self.cov_sum += (wd[:, :, None] * y).transpose(1, 2, 0) @ np.conj(y).transpose(1, 0, 2)
+        r = lift_snapshots(y)
+        self.lift_first *= keep
+        self.lift_first += np.einsum("kf,kfd->fd", wd, r)
         if self.lift_sum is not None:
-            r = lift_snapshots(y)
             self.lift_sum *= keep
             self.lift_sum += np.einsum("kf,kfi,kfj->fij", wd, r, r, optimize=True)
         self.weight = keep * self.weight + wd.sum(axis=0)
@@ -170,7 +171,7 @@ class MomentAccumulator:
     def seed(self, model: NoiseModel) -> None:
         """Start from a model, counting it as ``model.frames`` frames of evidence."""
         n = model.frames
-        self.cov_sum = model.covariance * n
+        self.lift_first = rho(model.covariance) * n
         if self.lift_sum is not None:
             self.lift_sum = model.lift_second_moment * n
         self.weight = np.full(self.weight.shape, n)
@@ -179,7 +180,7 @@ class MomentAccumulator:
 
     def means(self) -> tuple[NDArray[np.complex128], NDArray[np.float64] | None]:
         w = np.maximum(self.weight, 1e-300)
-        cov = self.cov_sum / w[:, None, None]
+        cov = unrho(self.lift_first / w[:, None])
         lift = None if self.lift_sum is None else self.lift_sum / w[:, None, None]
         return cov, lift
 
