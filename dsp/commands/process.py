@@ -31,7 +31,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--noise-region", action="append", type=parse_region, default=[],
         metavar="START:END", help="noise-only stretch of the take in seconds (repeatable)",
     )
-    noise.add_argument("--noise-model", help="noise model learned with `liftmag learn`")
+    noise.add_argument(
+        "--noise-model",
+        help="noise model learned with `liftmag learn`; with it (or --noise-region) the noise "
+        "is held as learned unless --noise-mode track is given",
+    )
     parser.add_argument("--subtype", help="output subtype, e.g. PCM_24 or FLOAT (default: input's)")
     parser.add_argument("--force", action="store_true", help="replace an existing output")
     parser.add_argument("--json", action="store_true", help="print a JSON summary on stdout")
