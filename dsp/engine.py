@@ -19,8 +19,16 @@ Per STFT frame and bin (all bins at once):
    the reference channel;
 6. overlap-add synthesis of the chosen output (cleaned, keep-image, taken-out).
 
-Derived quantities (whitening, RTF, MVDR weights, lifted transforms) are refreshed every
-``REFRESH_S`` seconds of frames, at frame indices fixed by the stream, not by the blocks.
+Derived quantities (whitening, RTF, MVDR weights) are refreshed every ``REFRESH_S`` seconds
+of frames and the lifted noise structure every ``LIFT_REFRESH_S``, at frame indices fixed by
+the stream, not by the blocks. The tracker's running statistics use every second frame
+(``TRACK_STRIDE``): with 75 % overlap, neighbouring frames carry nearly the same information.
+Frames that arrive in one block are processed as one batch between refreshes, which is why
+outputs for different block sizes agree to rounding (about 1e-12) rather than bit for bit.
+
+References: Gerkmann & Hendriks, IEEE TASLP 20(4), 2012; Markovich-Golan & Gannot, ICASSP
+2015; Ephraim & Malah, IEEE TASSP 32(6), 1984; Marchenko & Pastur, Math. USSR-Sbornik 1(4),
+1967 (bulk edges used by the spiked regulariser in :mod:`liftmag.noise`).
 """
 
 from __future__ import annotations
@@ -68,8 +76,6 @@ SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann
 MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
 MIN_SPEECH_FRAMES = 4.0  # speech-weighted frames a bin needs before its RTF comes from data
 ABSOLUTE_POWER_FLOOR = 1e-20  # keeps digital silence from making singular covariances
-
-SHRUNK_ESTIMATORS = ("lifted-wiener", "lifted-affine", "lifted-wiener-fixed")
 
 
 @dataclass
