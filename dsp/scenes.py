@@ -47,8 +47,8 @@ import scipy.fft
 import scipy.signal
 from numpy.typing import ArrayLike, NDArray
 
-# Dry air at 20 degC (handbook value; recalled from memory).
-SPEED_OF_SOUND_M_S = 343.0
+# One value for the whole package: dry air at 20 degC (handbook value; see liftmag.geometry).
+from liftmag.geometry import SPEED_OF_SOUND_M_S
 
 SPEECH_NAMES = ("talker_a", "talker_b")
 
