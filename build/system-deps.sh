@@ -3,8 +3,10 @@
 # lilv-utils: lv2ls, lv2info, lv2apply (the reference LV2 host tools)
 # lv2-dev: LV2 headers and lv2_validate; sordi: RDF parser lv2_validate calls
 # binutils: readelf and nm, which the plugin tests use to check the shared object
+# chromium: headless browser that renders the HTML reports in the tests (about 10 s to install
+#   here; if it cannot be had, those two checks are skipped and the rest still runs)
 set -euo pipefail
-needed=(lilv-utils lv2-dev sordi binutils)
+needed=(lilv-utils lv2-dev sordi binutils chromium)
 # The plugin shim is C compiled against the Python that runs the venv: it needs a compiler and
 # that Python's headers and shared library (Debian's python3-dev when the venv comes from
 # Debian's python3; interpreters built elsewhere, e.g. with pyenv, ship their own).

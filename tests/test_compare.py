@@ -15,10 +15,10 @@ import random
 import re
 import shutil
 import struct
-import subprocess
 from html.parser import HTMLParser
 from pathlib import Path
 
+import browser
 import numpy as np
 import pytest
 import soundfile as sf
@@ -336,15 +336,12 @@ def test_html_report_is_self_contained_and_complete(full_run):
         assert (out / link).is_file()
 
 
-@pytest.mark.skipif(shutil.which("chromium") is None, reason="Debian chromium not installed")
+@pytest.mark.skipif(browser.CHROMIUM is None, reason="Debian chromium not installed")
 def test_html_report_renders_in_chromium(full_run, tmp_path):
+    # Reference renderer: Debian's headless Chromium, as a reader would open the report.
     out, _, _ = full_run
-    shot = tmp_path / "shot.png"
-    subprocess.run(
-        ["chromium", "--headless", "--no-sandbox", "--disable-gpu",
-         f"--screenshot={shot}", "--window-size=1200,2000", (out / "report.html").as_uri()],
-        check=True, timeout=60, capture_output=True,
-    )  # fmt: skip
+    shot = browser.screenshot(out / "report.html", tmp_path / "shot.png", tmp_path / "profile",
+                              width=1200, height=2000)
     from matplotlib.image import imread
 
     pixels = imread(str(shot))

@@ -5,6 +5,9 @@ from __future__ import annotations
 import json
 from html.parser import HTMLParser
 
+import browser
+import numpy as np
+import pytest
 import soundfile as sf
 
 from liftmag.cli import main
@@ -39,3 +42,19 @@ def test_demo_writes_audio_model_and_report_and_improves_on_the_take(tmp_path, c
     assert all(s.startswith("data:image/png;base64,") for s in page.sources)
     # A second run refuses to overwrite the folder without --force.
     assert main(["demo", "--out", str(out)]) == 2
+
+
+@pytest.mark.skipif(browser.CHROMIUM is None, reason="Debian chromium not installed")
+def test_demo_report_renders_in_headless_chromium(tmp_path):
+    # Reference renderer: Chromium (Debian package), as a reader of the report would open it.
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out)]) == 0
+    shot = browser.screenshot(out / "report.html", tmp_path / "shot.png", tmp_path / "profile")
+    from matplotlib.image import imread
+
+    pixels = imread(str(shot))[..., :3]
+    assert pixels.shape[0] >= 2000 and pixels.shape[1] >= 1200
+    rows_with_content = np.mean(pixels.std(axis=(1, 2)) > 0.02)
+    # Text, tables and figures fill most of a 2400-pixel-high page; a blank or broken page
+    # (missing images, unstyled error text) leaves it white.
+    assert rows_with_content > 0.5, rows_with_content

@@ -174,8 +174,9 @@ def run(args: argparse.Namespace) -> int:
                                  "pystoi; PESQ-WB: ITU-T P.862.2 via the pesq package; SI-SDR: "
                                  "Le Roux et al. 2019. Higher is better for all four."),
             f"auto used the lifted estimator in {100 * lifted_fraction:.0f} % of the time-"
-            "frequency bins: where the learned noise showed non-Gaussian structure (the radio's "
-            "talker, the generator's firing tones); elsewhere it is the linear estimator.",
+            "frequency bins: those where the learned noise showed non-Gaussian structure (this "
+            "scene's noise holds a talking radio and a generator's firing tones); elsewhere it "
+            "is the linear estimator.",
         )),
         report.Section("Spectrograms", (
             report.Image(spectrograms, "spectrograms", "Take, clean reference and each result "
