@@ -6,7 +6,8 @@
 # chromium: headless browser that renders the HTML reports in the tests (about 10 s to install
 #   here; if it cannot be had, those two checks are skipped and the rest still runs)
 set -euo pipefail
-needed=(lilv-utils lv2-dev sordi binutils chromium)
+needed=(lilv-utils lv2-dev sordi binutils)
+optional=(chromium)
 # The plugin shim is C compiled against the Python that runs the venv: it needs a compiler and
 # that Python's headers and shared library (Debian's python3-dev when the venv comes from
 # Debian's python3; interpreters built elsewhere, e.g. with pyenv, ship their own).
@@ -15,20 +16,33 @@ py=${PYTHON:-python3}
 if ! "$py" -c 'import os, sysconfig; raise SystemExit(not os.path.exists(os.path.join(sysconfig.get_paths()["include"], "Python.h")))' 2>/dev/null; then
   needed+=(python3-dev)
 fi
-missing=()
-for pkg in "${needed[@]}"; do
-  dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed" || missing+=("$pkg")
-done
-[ ${#missing[@]} -eq 0 ] && exit 0
+absent() {
+  local out=()
+  for pkg in "$@"; do
+    dpkg-query -W -f='${Status}' "$pkg" 2>/dev/null | grep -q "install ok installed" || out+=("$pkg")
+  done
+  echo "${out[@]:-}"
+}
+read -r -a missing <<< "$(absent "${needed[@]}")"
+read -r -a missing_optional <<< "$(absent "${optional[@]}")"
+[ ${#missing[@]} -eq 0 ] && [ ${#missing_optional[@]} -eq 0 ] && exit 0
 if [ "$(id -u)" -eq 0 ]; then
-  echo "Installing Debian packages: ${missing[*]}"
-  export DEBIAN_FRONTEND=noninteractive
-  apt-get update -qq
-  apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null
+  apt=(apt-get)
 elif command -v sudo >/dev/null 2>&1 && sudo -n true 2>/dev/null; then
-  sudo DEBIAN_FRONTEND=noninteractive apt-get update -qq
-  sudo DEBIAN_FRONTEND=noninteractive apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null
+  apt=(sudo apt-get)
 else
-  echo "Missing Debian packages: ${missing[*]} (install them with apt-get as root);"
-  echo "the LV2 plugin tests will be skipped until they are present."
+  echo "Missing Debian packages: ${missing[*]} ${missing_optional[*]} (install them with"
+  echo "apt-get as root); the LV2 plugin and browser tests are skipped until they are present."
+  exit 0
+fi
+export DEBIAN_FRONTEND=noninteractive
+"${apt[@]}" update -qq
+if [ ${#missing[@]} -gt 0 ]; then
+  echo "Installing Debian packages: ${missing[*]}"
+  "${apt[@]}" install -y -qq --no-install-recommends "${missing[@]}" >/dev/null
+fi
+if [ ${#missing_optional[@]} -gt 0 ]; then
+  echo "Installing optional Debian packages: ${missing_optional[*]}"
+  "${apt[@]}" install -y -qq --no-install-recommends "${missing_optional[@]}" >/dev/null \
+    || echo "Could not install ${missing_optional[*]}: the browser checks will be skipped."
 fi
