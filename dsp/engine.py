@@ -507,12 +507,13 @@ class Processor:
         # keeps the effective frame count honest for the Marchenko-Pastur edges.
         first = (-self._frame_index) % TRACK_STRIDE
         y_used, p_used = y[first::TRACK_STRIDE], probability[first::TRACK_STRIDE]
+        lifted = lift_snapshots(y_used)  # shared by the noise and the speech statistics
         if s.noise_mode == "track":
-            self._noise.update(y_used, 1.0 - p_used, self._noise_forgetting**TRACK_STRIDE)
+            self._noise.update(y_used, 1.0 - p_used, self._noise_forgetting**TRACK_STRIDE, lifted)
         elif s.noise_mode == "learn":
             self._noise.update(y, 1.0, 1.0)
         if s.target_deg is None:
-            self._speech.update(y_used, p_used, self._speech_forgetting**TRACK_STRIDE)
+            self._speech.update(y_used, p_used, self._speech_forgetting**TRACK_STRIDE, lifted)
 
     # ------------------------------------------------------------------ derived values
 

@@ -144,11 +144,18 @@ class MomentAccumulator:
         self.weight_sq = np.zeros(n_bins)
         self.version = 0  # bumped by every change, so derived values can be cached
 
-    def update(self, y: NDArray[np.complex128], weight: NDArray, forgetting: float) -> None:
+    def update(
+        self,
+        y: NDArray[np.complex128],
+        weight: NDArray,
+        forgetting: float,
+        lifted: NDArray[np.float64] | None = None,
+    ) -> None:
         """Add frames ``y`` (K, F, M) or one frame (F, M) with weights (K, F), (F,) or scalar.
 
         Equivalent to K sequential updates ``S <- forgetting * S + w_k x_k``, computed at once
-        as ``forgetting^K S + sum_k forgetting^(K-1-k) w_k x_k``.
+        as ``forgetting^K S + sum_k forgetting^(K-1-k) w_k x_k``. ``lifted`` may pass
+        ``lift_snapshots(y)`` when the caller has it already.
         """
         y = np.asarray(y)
         if y.ndim == 2:
@@ -158,7 +165,7 @@ class MomentAccumulator:
         decay = forgetting ** np.arange(k_frames - 1, -1, -1, dtype=float)
         wd = w * decay[:, None]
         keep = forgetting**k_frames
-        r = lift_snapshots(y)
+        r = lift_snapshots(y) if lifted is None else lifted
         self.lift_first *= keep
         self.lift_first += np.einsum("kf,kfd->fd", wd, r)
         if self.lift_sum is not None:
