@@ -25,11 +25,6 @@ pytestmark = [
 
 
 @pytest.fixture(scope="module")
-def bundle() -> Path:
-    return support.bundle()
-
-
-@pytest.fixture(scope="module")
 def take() -> tuple[np.ndarray, int, np.ndarray]:
     """A two-mic take in an image-source room (pyroomacoustics; Allen & Berkley 1979): two
     directional interferers from opposite sides plus diffuse noise, 0 dB SNR, talker at

@@ -18,11 +18,6 @@ pytestmark = [
 ]
 
 
-@pytest.fixture(scope="module")
-def bundle() -> Path:
-    return support.bundle()
-
-
 @pytest.fixture
 def env(bundle: Path, tmp_path: Path) -> dict[str, str]:
     return support.lv2_env(bundle.parent, tmp_path / "state")

@@ -28,11 +28,6 @@ def _index(field: str, choice: str) -> int:
 
 
 @pytest.fixture(scope="module")
-def bundle() -> Path:
-    return support.bundle()
-
-
-@pytest.fixture(scope="module")
 def host(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return support.compile_host(tmp_path_factory.mktemp("host"))
 
