@@ -87,10 +87,17 @@ def lift_snapshots(y: ArrayLike) -> NDArray[np.float64]:
     i, j = _pairs(m)
     n_pairs = len(i)
     out = np.empty((*y.shape[:-1], m * m))
-    out[..., :m] = y.real**2 + y.imag**2
-    cross = y[..., i] * np.conj(y[..., j])
-    np.multiply(cross.real, SQRT2, out=out[..., m : m + n_pairs])
-    np.multiply(cross.imag, SQRT2, out=out[..., m + n_pairs :])
+    # One channel or pair at a time on strided views: gathering all pairs at once with fancy
+    # indexing costs a (..., pairs) complex temporary and runs 1.4-1.5x slower (M = 2, 4).
+    re, im = y.real, y.imag
+    for k in range(m):
+        power = out[..., k]
+        np.multiply(re[..., k], re[..., k], out=power)
+        power += im[..., k] ** 2
+    for p, (a, b) in enumerate(zip(i, j, strict=True)):
+        cross = y[..., a] * np.conj(y[..., b])
+        np.multiply(cross.real, SQRT2, out=out[..., m + p])
+        np.multiply(cross.imag, SQRT2, out=out[..., m + n_pairs + p])
     return out
 
 
@@ -161,3 +168,23 @@ def crossterm_lift_covariance(g: ArrayLike, phi: ArrayLike) -> NDArray[np.float6
     ggh = g[..., :, None] * np.conj(g[..., None, :])
     c = _kron_last2(np.swapaxes(phi, -1, -2), ggh) + _kron_last2(np.conj(ggh), phi)
     return lift_covariance(c)
+
+
+def crossterm_lift_factor(g: ArrayLike) -> NDArray[np.float64]:
+    """Factor ``F`` (..., M^2, 2M) with ``F F^T = crossterm_lift_covariance(g, I)``.
+
+    With white noise the cross terms are ``g u^H + u g^H`` for ``u ~ CN(0, I)``. Writing
+    ``u = sum_m (x_m + i y_m) e_m`` with real parts of variance 1/2 gives the columns
+    ``rho(g e_m^H + e_m g^H) / sqrt2`` and ``rho(i (e_m g^H - g e_m^H)) / sqrt2``. Their span
+    has dimension 2M - 1 (the imaginary direction along ``g`` cancels), which is why a
+    lifted estimator's speech-dependent noise term has rank 2M - 1 out of M^2.
+    """
+    g = np.asarray(g)
+    m = g.shape[-1]
+    eye = np.eye(m)
+    # A[..., k, i, j] = g_i delta_jk, the (k-th) matrix g e_k^H.
+    g_ek = g[..., None, :, None] * eye[:, None, :]
+    ek_g = np.conj(np.swapaxes(g_ek, -1, -2))  # e_k g^H
+    real_part = rho(g_ek + ek_g)
+    imag_part = rho(1j * (ek_g - g_ek))
+    return np.swapaxes(np.concatenate([real_part, imag_part], axis=-2), -1, -2) / SQRT2

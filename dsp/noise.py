@@ -223,6 +223,38 @@ def whitened_lift_covariance(
     return (out + np.swapaxes(out, -1, -2)) / 2
 
 
+def spiked_lift_factors(
+    whitened_cov: NDArray[np.float64], effective_frames: NDArray, threshold: float = 1.5
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.int_]]:
+    """Eigen-factors of :func:`spiked_lift_covariance`: ``regularised = U diag(values) U^T``.
+
+    Returns ``(values (F, D), U (F, D, D), n_spikes (F,))``; bins without structure get
+    ``values = 1`` and ``U = I``. The engine uses the factors directly (the inverse square
+    root is ``diag(values^-1/2) U^T``), so no further decomposition is needed.
+    """
+    d = whitened_cov.shape[-1]
+    n = np.maximum(np.asarray(effective_frames, dtype=float), 1.0)
+    q = d / n
+    upper = threshold * (1 + np.sqrt(q)) ** 2
+    lower = np.where(q < 1, (1 - np.sqrt(np.minimum(q, 1))) ** 2 / threshold, 0.0)
+    # Eigenvalues alone decide which bins have structure; eigenvectors only for those bins.
+    lam_all = np.linalg.eigvalsh(whitened_cov)
+    spiky = np.flatnonzero(
+        np.any((lam_all > upper[:, None]) | (lam_all < lower[:, None]), axis=-1)
+    )
+    values = np.ones(whitened_cov.shape[:-1])
+    vectors = np.broadcast_to(np.eye(d), whitened_cov.shape).copy()
+    n_spikes = np.zeros(whitened_cov.shape[0], dtype=int)
+    if spiky.size:
+        lam, u = np.linalg.eigh(whitened_cov[spiky])
+        keep = (lam > upper[spiky, None]) | (lam < lower[spiky, None])
+        # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
+        values[spiky] = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE), 1.0)
+        vectors[spiky] = u
+        n_spikes[spiky] = keep.sum(axis=-1)
+    return values, vectors, n_spikes
+
+
 def spiked_lift_covariance(
     whitened_cov: NDArray[np.float64], effective_frames: NDArray, threshold: float = 1.5
 ) -> tuple[NDArray[np.float64], NDArray[np.int_]]:
@@ -242,26 +274,9 @@ def spiked_lift_covariance(
                              with ``lambda_k`` floored at ``MIN_LIFT_EIGENVALUE``
     n_spikes : (F,)          number of kept directions per bin (0 = Gaussian-looking)
     """
-    d = whitened_cov.shape[-1]
-    n = np.maximum(np.asarray(effective_frames, dtype=float), 1.0)
-    q = d / n
-    upper = threshold * (1 + np.sqrt(q)) ** 2
-    lower = np.where(q < 1, (1 - np.sqrt(np.minimum(q, 1))) ** 2 / threshold, 0.0)
-    # Eigenvalues alone decide which bins have structure; eigenvectors only for those bins.
-    lam_all = np.linalg.eigvalsh(whitened_cov)
-    spiky = np.flatnonzero(
-        np.any((lam_all > upper[:, None]) | (lam_all < lower[:, None]), axis=-1)
-    )
-    reg = np.broadcast_to(np.eye(d), whitened_cov.shape).copy()
-    n_spikes = np.zeros(whitened_cov.shape[0], dtype=int)
-    if spiky.size:
-        lam, u = np.linalg.eigh(whitened_cov[spiky])
-        keep = (lam > upper[spiky, None]) | (lam < lower[spiky, None])
-        # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
-        delta = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE) - 1.0, 0.0)
-        reg[spiky] += np.einsum("fik,fk,fjk->fij", u, delta, u)
-        n_spikes[spiky] = keep.sum(axis=-1)
-    return reg, n_spikes
+    values, vectors, n_spikes = spiked_lift_factors(whitened_cov, effective_frames, threshold)
+    regularised = np.einsum("fik,fk,fjk->fij", vectors, values, vectors)
+    return (regularised + np.swapaxes(regularised, -1, -2)) / 2, n_spikes
 
 
 def shrunk_lift_covariance(

@@ -19,6 +19,7 @@ import pytest
 from liftmag.estimators import linear_as_lifted, outer
 from liftmag.lift import (
     crossterm_lift_covariance,
+    crossterm_lift_factor,
     gaussian_lift_covariance,
     lift_snapshots,
     lift_transform,
@@ -106,3 +107,18 @@ def test_crossterm_lift_covariance_matches_monte_carlo() -> None:
     sample = np.cov(rho(cross), rowvar=False)
     model = 1.3**2 * crossterm_lift_covariance(g, phi)
     assert np.max(np.abs(sample - model)) < 0.02 * np.max(np.abs(model))
+
+
+@pytest.mark.parametrize("m", [2, 3, 4])
+def test_crossterm_factor_reproduces_the_closed_form_with_rank_2m_minus_1(m: int) -> None:
+    # The design note's closed form with Phi = I (checked by Monte Carlo above) against the
+    # factor the engine uses, and its rank: the Hermitian matrices g u^H + u g^H span a
+    # (2M - 1)-dimensional real space (the tangent space of rank-one matrices at g g^H,
+    # dimension 2M minus the phase of g; e.g. Horn & Johnson, Matrix Analysis, ch. 4).
+    g = RNG.standard_normal((6, m)) + 1j * RNG.standard_normal((6, m))
+    factor = crossterm_lift_factor(g)
+    assert factor.shape == (6, m * m, 2 * m)
+    np.testing.assert_allclose(
+        factor @ np.swapaxes(factor, -1, -2), crossterm_lift_covariance(g, np.eye(m)), atol=1e-12
+    )
+    assert all(np.linalg.matrix_rank(f) == 2 * m - 1 for f in factor)
