@@ -447,12 +447,13 @@ class Processor:
             lifted_bins = lf["n_spikes"] > 0 if est == "auto" else np.ones(len(p_lin[0]), bool)
             self.report.lifted_frames_per_bin[lifted_bins] += k_frames
         amp = np.empty(p_lin.shape)
-        floor_snr = 10 ** (MIN_PRIOR_SNR_DB / 10)
+        # Everything of the decision-directed prior that does not depend on the previous frame
+        # is computed for the whole batch; the loop keeps only the recursive part.
+        fresh = (1 - s.smoothing) * np.maximum(p_lin, 0.0)
+        prior_floor = 10 ** (MIN_PRIOR_SNR_DB / 10) * der.residual
         for k in range(k_frames):  # the decision-directed prior is recursive in time
-            prior = np.maximum(
-                s.smoothing * self._prev_amp_sq + (1 - s.smoothing) * np.maximum(p_lin[k], 0.0),
-                floor_snr * der.residual,
-            )
+            carried = s.smoothing * self._prev_amp_sq
+            prior = np.maximum(carried + fresh[k], prior_floor)
             if est in ("linear-wiener", "delay-sum"):
                 p_hat = p_unbiased[k]
                 noise_eq = der.residual if est == "linear-wiener" else lf["noise_ds"]
@@ -477,7 +478,7 @@ class Processor:
                 noise_eq = None
                 self.report.lifted_bin_frames += len(p_hat)
                 self.report.lifted_frames_per_bin += 1
-            amp[k] = self._post_stage(p_hat, noise_eq)
+            amp[k] = self._post_stage(p_hat, noise_eq, carried)
 
         abs_ref = np.abs(y_ref)
         abs_phase = np.sqrt(mvdr_power) if phase_ref is z else np.abs(phase_ref)
@@ -510,14 +511,17 @@ class Processor:
             return (y_ref - cleaned)[:, None, :]
         return cleaned[:, None, :]
 
-    def _post_stage(self, p_hat: NDArray, noise_eq: NDArray | None) -> NDArray:
-        """Shared post-stage: decision-directed prior, Wiener gain, output amplitude."""
+    def _post_stage(self, p_hat: NDArray, noise_eq: NDArray | None, carried: NDArray) -> NDArray:
+        """Shared post-stage: decision-directed prior, Wiener gain, output amplitude.
+
+        ``carried`` is the previous frame's share of the prior, ``smoothing * A^2_(k-1)``.
+        """
         s = self.settings
         if noise_eq is None:  # MMSE estimators are already shrunk
             amp_sq = np.maximum(p_hat, 0.0)
         else:
             lam = np.maximum(
-                s.smoothing * self._prev_amp_sq + (1 - s.smoothing) * np.maximum(p_hat, 0.0),
+                carried + (1 - s.smoothing) * np.maximum(p_hat, 0.0),
                 10 ** (MIN_PRIOR_SNR_DB / 10) * noise_eq,
             )
             gain = lam / np.maximum(lam + noise_eq, 1e-300)
