@@ -633,8 +633,10 @@ class Processor:
                 # Cholesky here, by the eigen-factors below.
                 inv_sqrt = np.linalg.inv(np.linalg.cholesky(c_reg))
             else:
+                previous = self._noise_cache[1] if self._noise_cache else None
                 values, vectors, n_spikes = spiked_lift_factors(
-                    c_white, n_eff, s.spike_threshold
+                    c_white, n_eff, s.spike_threshold,
+                    mostly_structured=previous is not None and np.mean(previous > 0) > 0.5,
                 )
                 if s.estimator == "auto":
                     # Too few frames for M^4 fourth-order entries: trust no structure yet.

@@ -166,11 +166,13 @@ class MomentAccumulator:
         wd = w * decay[:, None]
         keep = forgetting**k_frames
         r = lift_snapshots(y) if lifted is None else lifted
+        weighted = r * wd[:, :, None]
         self.lift_first *= keep
-        self.lift_first += np.einsum("kf,kfd->fd", wd, r)
+        self.lift_first += weighted.sum(axis=0)
         if self.lift_sum is not None:
             self.lift_sum *= keep
-            self.lift_sum += np.einsum("kf,kfi,kfj->fij", wd, r, r, optimize=True)
+            # Per bin (D x K) @ (K x D): one batched product, a little faster than einsum.
+            self.lift_sum += np.matmul(weighted.transpose(1, 2, 0), r.transpose(1, 0, 2))
         self.weight = keep * self.weight + wd.sum(axis=0)
         self.weight_sq = keep**2 * self.weight_sq + (wd**2).sum(axis=0)
         self.version += 1
@@ -224,21 +226,28 @@ def whitened_lift_covariance(
 
 
 def spiked_lift_factors(
-    whitened_cov: NDArray[np.float64], effective_frames: NDArray, threshold: float = 1.5
+    whitened_cov: NDArray[np.float64],
+    effective_frames: NDArray,
+    threshold: float = 1.5,
+    mostly_structured: bool = False,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.int_]]:
     """Eigen-factors of :func:`spiked_lift_covariance`: ``regularised = U diag(values) U^T``.
 
     Returns ``(values (F, D), U (F, D, D), n_spikes (F,))``; bins without structure get
     ``values = 1`` and ``U = I``. The engine uses the factors directly (the inverse square
     root is ``diag(values^-1/2) U^T``), so no further decomposition is needed.
+    ``mostly_structured`` only changes the cost: when most bins are expected to have
+    structure, every bin is decomposed at once instead of screening eigenvalues first.
     """
     d = whitened_cov.shape[-1]
     n = np.maximum(np.asarray(effective_frames, dtype=float), 1.0)
     q = d / n
     upper = threshold * (1 + np.sqrt(q)) ** 2
     lower = np.where(q < 1, (1 - np.sqrt(np.minimum(q, 1))) ** 2 / threshold, 0.0)
-    # Eigenvalues alone decide which bins have structure; eigenvectors only for those bins.
-    lam_all = np.linalg.eigvalsh(whitened_cov)
+    if mostly_structured:
+        lam_all, u_all = np.linalg.eigh(whitened_cov)
+    else:  # eigenvalues alone decide which bins have structure; eigenvectors only for those
+        lam_all, u_all = np.linalg.eigvalsh(whitened_cov), None
     spiky = np.flatnonzero(
         np.any((lam_all > upper[:, None]) | (lam_all < lower[:, None]), axis=-1)
     )
@@ -246,7 +255,10 @@ def spiked_lift_factors(
     vectors = np.broadcast_to(np.eye(d), whitened_cov.shape).copy()
     n_spikes = np.zeros(whitened_cov.shape[0], dtype=int)
     if spiky.size:
-        lam, u = np.linalg.eigh(whitened_cov[spiky])
+        if u_all is None:
+            lam, u = np.linalg.eigh(whitened_cov[spiky])
+        else:
+            lam, u = lam_all[spiky], u_all[spiky]
         keep = (lam > upper[spiky, None]) | (lam < lower[spiky, None])
         # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
         values[spiky] = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE), 1.0)
