@@ -9,7 +9,8 @@ tracker alone (no room tone). One core: BLAS threads are pinned to 1 before nump
 Memory: ``liftmag process`` on generated 10-minute and 60-minute 48 kHz stereo PCM_16 files,
 peak resident set size of the child process.
 
-    .venv/bin/python benchmarks/bench_engine.py [--seconds 20] [--memory] [--memory-minutes 10,60]
+    .venv/bin/python benchmarks/bench_engine.py [--seconds 20] [--estimators auto,passthrough]
+        [--memory] [--memory-minutes 10,60]
 """
 
 from __future__ import annotations
@@ -55,7 +56,7 @@ def scene_48k(n_mics: int, seconds: float) -> tuple[np.ndarray, np.ndarray]:
     return take, tone
 
 
-def speed(seconds: float) -> None:
+def speed(seconds: float, estimators: tuple[str, ...] = ESTIMATORS) -> None:
     from liftmag.engine import NoiseLearner, iter_blocks
 
     print(f"Real-time factor, {seconds:g} s at {FS} Hz, one core, best of {REPEATS} "
@@ -69,7 +70,7 @@ def speed(seconds: float) -> None:
         learner = NoiseLearner(FS, m)
         learner.add_segment(iter_blocks(tone, 1 << 16))
         models[m] = learner.model()
-    for estimator in ESTIMATORS:
+    for estimator in estimators:
         nulls = estimator == "lifted-nulls"
         extra = {"mic_spacing_m": 0.08, "null_deg": (15.0, 140.0)} if nulls else {}
         row = []
@@ -129,8 +130,13 @@ def main() -> int:
     parser.add_argument("--seconds", type=float, default=20.0)
     parser.add_argument("--memory", action="store_true", help="also measure peak memory")
     parser.add_argument("--memory-minutes", default="10,60")
+    parser.add_argument("--estimators", default=",".join(ESTIMATORS),
+                        help="comma-separated subset (passthrough = bare STFT round trip)")
     args = parser.parse_args()
-    speed(args.seconds)
+    unknown = set(args.estimators.split(",")) - set(ESTIMATORS)
+    if unknown:
+        parser.error(f"unknown estimator(s) {sorted(unknown)}; choose from {ESTIMATORS}")
+    speed(args.seconds, tuple(args.estimators.split(",")))
     if args.memory:
         memory([float(m) for m in args.memory_minutes.split(",")])
     return 0

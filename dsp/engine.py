@@ -482,14 +482,19 @@ class Processor:
 
         abs_ref = np.abs(y_ref)
         abs_phase = np.sqrt(mvdr_power) if phase_ref is z else np.abs(phase_ref)
-        floor = 10 ** (-s.reduction_limit_db / 20) * abs_ref
-        # Never louder than both the reference and the beamformer output; never below the limit.
-        amp = np.clip(amp, floor, np.maximum(np.maximum(abs_ref, abs_phase), floor))
+        # Never louder than both the reference and the beamformer output; never below the limit
+        # (which is at most the reference magnitude, as the limit is >= 0 dB).
+        np.maximum(amp, 10 ** (-s.reduction_limit_db / 20) * abs_ref, out=amp)
+        np.minimum(amp, np.maximum(abs_ref, abs_phase), out=amp)
         phase_src, magnitude = (
             (phase_ref, abs_phase) if s.phase_source == "mvdr" else (y_ref, abs_ref)
         )
-        unit = np.where(magnitude > 0, phase_src / np.maximum(magnitude, 1e-300), 1.0)
-        return self._output(y, amp * unit, amp / np.maximum(abs_ref, 1e-300))
+        cleaned = phase_src * (amp / np.maximum(magnitude, 1e-300))
+        silent = magnitude == 0  # no phase to borrow: keep the magnitude with zero phase
+        if silent.any():
+            cleaned[silent] = amp[silent]
+        gain = amp / np.maximum(abs_ref, 1e-300) if s.output_mode == "keep-image" else None
+        return self._output(y, cleaned, gain)
 
     def _output(
         self, y: NDArray, cleaned: NDArray, gain: NDArray | None
@@ -544,14 +549,14 @@ class Processor:
         gains, carry = _presence_smoothing(y.shape[0])
         smooth = gains @ spp + carry[:, None] * self._spp_smooth
         self._spp_smooth = smooth[-1]
-        # Cap a long-held presence so the noise estimate cannot stagnate.
-        probability = np.where(smooth > 0.99, np.minimum(spp, 0.99), spp)
         # Frames overlap by 75 %, so neighbours carry nearly the same information: the running
         # statistics take every second frame (by stream index, so blocks do not matter), with
         # the forgetting squared to keep their memory in seconds. This halves the cost and
         # keeps the effective frame count honest for the Marchenko-Pastur edges.
-        first = (-self._frame_index) % TRACK_STRIDE
-        y_used, p_used = y[first::TRACK_STRIDE], probability[first::TRACK_STRIDE]
+        used = slice((-self._frame_index) % TRACK_STRIDE, None, TRACK_STRIDE)
+        # Cap a long-held presence so the noise estimate cannot stagnate.
+        p_used = np.where(smooth[used] > 0.99, np.minimum(spp[used], 0.99), spp[used])
+        y_used = y[used]
         lifted = lift_snapshots(y_used)  # shared by the noise and the speech statistics
         if s.noise_mode == "track":
             self._noise.update(y_used, 1.0 - p_used, self._noise_forgetting**TRACK_STRIDE, lifted)
