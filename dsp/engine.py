@@ -627,9 +627,9 @@ class Processor:
         stale = self._noise.version != self._noise_cache_version and epoch != self._noise_epoch
         if self._noise_cache_key != key or stale:
             n_eff = self._noise.effective_frames()
-            c_white = whitened_lift_covariance(cov, lift2, inv)
-            d = c_white.shape[-1]
+            d = self.n_channels**2
             if s.estimator == "lifted-mv":
+                c_white = whitened_lift_covariance(cov, lift2, inv)
                 c_reg = shrunk_lift_covariance(c_white, n_eff)
                 n_spikes = np.zeros(len(n_eff), dtype=int)
                 scale = np.trace(c_reg, axis1=-2, axis2=-1) / d
@@ -638,17 +638,25 @@ class Processor:
                 # Cholesky here, by the eigen-factors below.
                 inv_sqrt = np.linalg.inv(np.linalg.cholesky(c_reg))
             else:
-                previous = self._noise_cache[1] if self._noise_cache else None
-                values, vectors, n_spikes = spiked_lift_factors(
-                    c_white, n_eff, s.spike_threshold,
-                    mostly_structured=previous is not None and np.mean(previous > 0) > 0.5,
-                )
-                if s.estimator == "auto":
-                    # Too few frames for M^4 fourth-order entries: trust no structure yet.
-                    thin = n_eff < MIN_FRAMES_PER_LIFT_DIM * d
-                    n_spikes = np.where(thin, 0, n_spikes)
-                    values = np.where(thin[:, None], 1.0, values)
-                    vectors = np.where(thin[:, None, None], np.eye(d), vectors)
+                f = len(n_eff)
+                values, vectors = np.ones((f, d)), np.broadcast_to(np.eye(d), (f, d, d)).copy()
+                n_spikes = np.zeros(f, dtype=int)
+                # auto trusts no structure in bins with too few frames for M^4 fourth-order
+                # entries (the Gaussian model stands there), so it does not analyse them.
+                enough = n_eff >= MIN_FRAMES_PER_LIFT_DIM * d if s.estimator == "auto" else True
+                analysed = slice(None) if np.all(enough) else np.flatnonzero(enough)
+                if not isinstance(analysed, np.ndarray) or analysed.size:
+                    previous = self._noise_cache[1] if self._noise_cache else None
+                    (values[analysed], vectors[analysed], n_spikes[analysed]) = (
+                        spiked_lift_factors(
+                            whitened_lift_covariance(
+                                cov[analysed], lift2[analysed], inv[analysed]
+                            ),
+                            n_eff[analysed], s.spike_threshold,
+                            mostly_structured=(previous is not None
+                                               and np.mean(previous > 0) > 0.5),
+                        )
+                    )
                 values = values + s.diagonal_loading * values.mean(axis=-1, keepdims=True)
                 inv_sqrt = np.swapaxes(vectors, -1, -2) / np.sqrt(values)[:, :, None]
                 c_reg = None
