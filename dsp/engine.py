@@ -40,6 +40,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy.signal import lfilter
 
 from liftmag.estimators import (
     lifted_affine_weights,
@@ -121,8 +122,21 @@ class _Derived:
     lifted: dict  # estimator-specific arrays
 
 
-@functools.cache
-def _presence_smoothing(n_frames: int) -> tuple[NDArray, NDArray]:
+def _smooth_presence(spp: NDArray, previous: NDArray) -> NDArray:
+    """First-order smoothing over frames, ``p_k = 0.9 p_(k-1) + 0.1 spp_k``, from ``previous``.
+
+    Batches of up to 64 frames (the default refresh holds about 31) use one matrix product,
+    a third of the cost of ``scipy.signal.lfilter`` there; longer ones (very short STFT
+    frames) use lfilter, whose cost grows linearly rather than quadratically with the batch.
+    """
+    if spp.shape[0] > 64:
+        return lfilter([0.1], [1.0, -0.9], spp, axis=0, zi=0.9 * previous[None])[0]
+    gains, carry = _presence_smoothing_matrix(spp.shape[0])
+    return gains @ spp + carry[:, None] * previous
+
+
+@functools.lru_cache(maxsize=64)
+def _presence_smoothing_matrix(n_frames: int) -> tuple[NDArray, NDArray]:
     """``(A, c)`` with ``p = A s + c p_prev`` for ``p_k = 0.9 p_(k-1) + 0.1 s_k``, k < n_frames."""
     k = np.arange(n_frames)
     lag = k[:, None] - k[None, :]
@@ -545,10 +559,7 @@ class Processor:
         s = self.settings
         xi = 10 ** (SPEECH_PRIOR_SNR_DB / 10)
         spp = 1.0 / (1.0 + (1.0 + xi) * np.exp(-np.minimum(gamma * xi / (1.0 + xi), 700.0)))
-        # First-order recursive smoothing over frames, p_k = 0.9 p_(k-1) + 0.1 spp_k, as one
-        # matrix product over the batch (a third of the cost of scipy.signal.lfilter here).
-        gains, carry = _presence_smoothing(y.shape[0])
-        smooth = gains @ spp + carry[:, None] * self._spp_smooth
+        smooth = _smooth_presence(spp, self._spp_smooth)
         self._spp_smooth = smooth[-1]
         # Frames overlap by 75 %, so neighbours carry nearly the same information: the running
         # statistics take every second frame (by stream index, so blocks do not matter), with

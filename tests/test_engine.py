@@ -254,3 +254,16 @@ def test_engine_low_rank_lifted_mv_equals_the_direct_solve(m: int):
     p_ref = np.einsum("fd,fd->f", w, lift_snapshots(y) - rho(np.eye(m)))
     np.testing.assert_allclose(p_hat, p_ref, rtol=1e-8, atol=1e-10 * np.abs(p_ref).max())
     np.testing.assert_allclose(noise_eq, np.sqrt(prior**2 + variance) - prior, rtol=1e-8)
+
+
+@pytest.mark.parametrize("n_frames", [1, 31, 64, 65, 300])
+def test_presence_smoothing_matches_lfilter(n_frames: int):
+    # Reference: scipy.signal.lfilter with the same first-order recursion and initial state.
+    from scipy.signal import lfilter
+
+    from liftmag.engine import _smooth_presence
+
+    rng = np.random.default_rng(n_frames)
+    spp, previous = rng.random((n_frames, 50)), rng.random(50)
+    expected = lfilter([0.1], [1.0, -0.9], spp, axis=0, zi=0.9 * previous[None])[0]
+    np.testing.assert_allclose(_smooth_presence(spp, previous), expected, rtol=1e-12, atol=1e-15)
