@@ -655,19 +655,16 @@ class Processor:
                 n_spikes = np.zeros(f, dtype=int)
                 # auto trusts no structure in bins with too few frames for M^4 fourth-order
                 # entries (the Gaussian model stands there), so it does not analyse them.
-                enough = n_eff >= MIN_FRAMES_PER_LIFT_DIM * d if s.estimator == "auto" else True
-                analysed = slice(None) if np.all(enough) else np.flatnonzero(enough)
-                if not isinstance(analysed, np.ndarray) or analysed.size:
+                analysed = np.arange(f)
+                if s.estimator == "auto":
+                    analysed = np.flatnonzero(n_eff >= MIN_FRAMES_PER_LIFT_DIM * d)
+                if analysed.size:
+                    sel = slice(None) if analysed.size == f else analysed  # no copy if all
                     previous = self._noise_cache[1] if self._noise_cache else None
-                    (values[analysed], vectors[analysed], n_spikes[analysed]) = (
-                        spiked_lift_factors(
-                            whitened_lift_covariance(
-                                cov[analysed], lift2[analysed], inv[analysed]
-                            ),
-                            n_eff[analysed], s.spike_threshold,
-                            mostly_structured=(previous is not None
-                                               and np.mean(previous > 0) > 0.5),
-                        )
+                    values[sel], vectors[sel], n_spikes[sel] = spiked_lift_factors(
+                        whitened_lift_covariance(cov[sel], lift2[sel], inv[sel]),
+                        n_eff[sel], s.spike_threshold,
+                        mostly_structured=previous is not None and np.mean(previous > 0) > 0.5,
                     )
                 values = values + s.diagonal_loading * values.mean(axis=-1, keepdims=True)
                 inv_sqrt = np.swapaxes(vectors, -1, -2) / np.sqrt(values)[:, :, None]
