@@ -113,8 +113,9 @@ def test_crossterm_lift_covariance_matches_monte_carlo() -> None:
 def test_crossterm_factor_reproduces_the_closed_form_with_rank_2m_minus_1(m: int) -> None:
     # The design note's closed form with Phi = I (checked by Monte Carlo above) against the
     # factor the engine uses, and its rank: the Hermitian matrices g u^H + u g^H span a
-    # (2M - 1)-dimensional real space (the tangent space of rank-one matrices at g g^H,
-    # dimension 2M minus the phase of g; e.g. Horn & Johnson, Matrix Analysis, ch. 4).
+    # (2M - 1)-dimensional real space (the tangent space of the rank-one Hermitian matrices at
+    # g g^H: 2M real parameters of u minus the one, u = i g, that cancels; a standard fact,
+    # recalled from memory and derived in crossterm_lift_factor's docstring).
     g = RNG.standard_normal((6, m)) + 1j * RNG.standard_normal((6, m))
     factor = crossterm_lift_factor(g)
     assert factor.shape == (6, m * m, 2 * m)
