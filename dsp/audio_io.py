@@ -573,3 +573,18 @@ def _fsync(path: Path) -> None:
         os.fsync(fd)
     finally:
         os.close(fd)
+
+
+def write_atomically(path: Path, data: bytes) -> None:
+    """Write to a hidden temporary file beside ``path`` and rename it over ``path``."""
+    temp = path.with_name(f".{path.name}.partial-{secrets.token_hex(4)}")
+    try:
+        with open(temp, "xb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(temp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            temp.unlink()
+        raise

@@ -577,21 +577,6 @@ def read_record(output: str | Path) -> dict[str, Any] | None:
     return data if isinstance(data, dict) and data.get("format") == RECORD_FORMAT else None
 
 
-def write_atomically(path: Path, data: bytes) -> None:
-    """Write to a hidden temporary file beside ``path`` and rename it over ``path``."""
-    temp = path.with_name(f".{path.name}.partial-{secrets.token_hex(4)}")
-    try:
-        with open(temp, "xb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(temp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            temp.unlink()
-        raise
-
-
 def _write_record(output: Path, state: str, key: str, job: Job, **extra: Any) -> None:
     record = {
         "format": RECORD_FORMAT, "format_version": RECORD_VERSION, "state": state,
@@ -600,7 +585,7 @@ def _write_record(output: Path, state: str, key: str, job: Job, **extra: Any) ->
         "noise_model": job.noise.path if job.noise else None,
         "written_at": time.strftime("%Y-%m-%dT%H:%M:%S%z"), **extra,
     }
-    write_atomically(record_path(output), json.dumps(record, indent=1).encode())
+    audio_io.write_atomically(record_path(output), json.dumps(record, indent=1).encode())
 
 
 def is_up_to_date(output: Path, record: dict[str, Any] | None, key: str) -> bool:
@@ -660,7 +645,7 @@ class NoiseResolver:
                 description="learned from " + ", ".join(Path(p).name for p in paths),
             )
             self.state_dir.mkdir(parents=True, exist_ok=True)
-            write_atomically(target, model.to_bytes())
+            audio_io.write_atomically(target, model.to_bytes())
         return NoiseRef(str(target), sha256_file(target))
 
 

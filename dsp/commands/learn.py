@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import os
-import tempfile
 from pathlib import Path
 
 from liftmag.commands.common import parse_region, print_json
@@ -32,7 +30,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from liftmag.audio_io import AudioInputError
+    from liftmag.audio_io import AudioInputError, write_atomically
     from liftmag.cli import UserError
     from liftmag.fileproc import learn_noise, open_source
     from liftmag.settings import Settings
@@ -51,15 +49,7 @@ def run(args: argparse.Namespace) -> int:
         raise UserError(str(exc)) from exc
     data = model.to_bytes()
     out.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.partial-", dir=out.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.chmod(tmp, 0o644)  # mkstemp makes it private; a model is shared like audio
-        os.replace(tmp, out)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    write_atomically(out, data)
     summary = {
         "output": str(out), "channels": model.n_channels, "sample_rate_hz": model.sample_rate_hz,
         "frames": model.frames, "duration_s": round(model.duration_s, 3),
