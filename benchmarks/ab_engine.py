@@ -9,7 +9,7 @@ with one BLAS thread, and reports the best CPU time of each side and their ratio
     .venv/bin/python benchmarks/ab_engine.py REV [--mics 2,4] [--seconds 20] [--rounds 8]
         [--noise track|hold] [--estimator auto]
 
-``REV`` is any git revision (``HEAD``, a commit, a tag); its ``dsp/`` is extracted to a
+``REV`` is any git revision (``HEAD``, a commit, a tag); its package is extracted to a
 temporary folder and imported as ``liftmag`` by its children.
 """
 
@@ -54,14 +54,18 @@ print(best)
 
 
 def extract(revision: str, into: Path) -> Path:
-    """``revision``'s ``dsp/`` as an importable ``liftmag`` package under ``into``."""
+    """``revision``'s package as an importable ``liftmag`` under ``into``.
+
+    Revisions before the ``dsp/liftmag/`` layout kept the package's modules directly in ``dsp/``.
+    """
     archive = subprocess.run(
         ["git", "-C", str(REPO), "archive", revision, "dsp"], capture_output=True, check=False
     )
     if archive.returncode:
         raise SystemExit(f"cannot read revision {revision!r}: {archive.stderr.decode().strip()}")
     subprocess.run(["tar", "-x", "-C", str(into)], input=archive.stdout, check=True)
-    (into / "dsp").rename(into / "liftmag")
+    package = into / "dsp" / "liftmag"
+    (package if package.is_dir() else into / "dsp").rename(into / "liftmag")
     return into
 
 
@@ -85,7 +89,7 @@ def main() -> int:
         old = extract(args.revision, tmp_path / "old")
         new = tmp_path / "new"
         new.mkdir()
-        (new / "liftmag").symlink_to(REPO / "dsp")
+        (new / "liftmag").symlink_to(REPO / "dsp" / "liftmag")
         print(f"CPU time of process_array, {args.seconds:g} s at 48 kHz, {args.noise}, "
               f"{args.estimator}; best of {args.rounds} interleaved rounds")
         print(f"| mics | {args.revision} | working tree | speed-up |")

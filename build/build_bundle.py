@@ -37,7 +37,7 @@ SOURCES = (
     "plugin/liftmag_lv2_bridge.py",
     "plugin/templates/manifest.ttl.in",
     "plugin/templates/plugin.ttl.in",
-    "dsp/settings.py",
+    "dsp/liftmag/settings.py",
     "build/build_bundle.py",
 )
 

@@ -1,8 +1,8 @@
 #!/usr/bin/env bash
 # Regenerates the synthetic speech used by the demo and the tests:
-#   dsp/data/talker_a.flac  (target talker, about 10 s)
-#   dsp/data/talker_b.flac  (competing talker / radio, about 46 s)
-# The sentences are the project's own, invented for this purpose (see dsp/data/README.md).
+#   dsp/liftmag/data/talker_a.flac  (target talker, about 10 s)
+#   dsp/liftmag/data/talker_b.flac  (competing talker / radio, about 46 s)
+# The sentences are the project's own, invented for this purpose (see dsp/liftmag/data/README.md).
 #
 # Needs the Debian packages espeak-ng (formant synthesiser, its own built-in voices only)
 # and sox. CI does not run this script: the FLAC files are committed. Re-running it on a
@@ -15,7 +15,7 @@ for tool in espeak-ng sox; do
   command -v "$tool" >/dev/null || { echo "make_speech.sh needs $tool (apt-get install $tool)" >&2; exit 1; }
 done
 here="$(cd "$(dirname "$0")" && pwd)"
-out="$here/../dsp/data"
+out="$here/../dsp/liftmag/data"
 mkdir -p "$out"
 work="$(mktemp -d)"
 trap 'rm -rf "$work"' EXIT

@@ -1,6 +1,6 @@
 """Tests of ``liftmag compare`` (liftmag.abcompare, liftmag.report, the CLI verb).
 
-Scene: dsp/data/talker_a.flac (synthetic speech made by this project, 16 kHz)
+Scene: dsp/liftmag/data/talker_a.flac (synthetic speech made by this project, 16 kHz)
 plus seeded white noise; every version is built from it here, so the true delays,
 gains and noise levels are known.
 """
@@ -26,7 +26,7 @@ import soundfile as sf
 from liftmag import abcompare, metrics
 from liftmag.cli import main
 
-DATA = Path(__file__).resolve().parents[1] / "dsp" / "data"
+DATA = Path(__file__).resolve().parents[1] / "dsp" / "liftmag" / "data"
 DELAY = 437
 GAIN_DB = -6.2
 
@@ -104,7 +104,7 @@ def test_regions_noise_only_found_in_pauses(speech):
     original = s + _noise(s.size, 0.1 * np.sqrt(np.mean(s**2)), seed=3)
     r = abcompare.find_regions(original, fs)
     assert r.noise_found_automatically and r.notes
-    # talker_a's pauses are digital silence (dsp/data/README.md), so the clean speech
+    # talker_a's pauses are digital silence (dsp/liftmag/data/README.md), so the clean speech
     # must be (nearly) absent from the automatically found noise-only region.
     assert np.mean(s[r.noise] ** 2) < 1e-4 * np.mean(s**2)
     assert r.speech.sum() > 3 * fs and not np.any(r.noise & r.speech)

@@ -1,8 +1,8 @@
 """Tests of liftmag.metrics against published definitions, handbook maths and the
 open reference libraries (pystoi, pesq, pyloudnorm).
 
-Speech material: dsp/data/talker_a.flac (synthetic speech made by this project,
-16 kHz mono; see dsp/data/README.md).
+Speech material: dsp/liftmag/data/talker_a.flac (synthetic speech made by this project,
+16 kHz mono; see dsp/liftmag/data/README.md).
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from scipy.special import digamma
 
 from liftmag import metrics
 
-DATA = Path(__file__).resolve().parents[1] / "dsp" / "data"
+DATA = Path(__file__).resolve().parents[1] / "dsp" / "liftmag" / "data"
 
 
 @pytest.fixture(scope="module")
@@ -163,7 +163,7 @@ def test_wada_table_end_points_match_the_model_analytically():
 @pytest.mark.parametrize("true_snr_db", [0.0, 10.0, 20.0])
 def test_wada_snr_close_to_true_snr_on_speech_plus_white_noise(talker_a, true_snr_db):
     # Kim & Stern 2008 report estimates within a few dB for speech in white noise.
-    # Speech: dsp/data/talker_a.flac (synthetic); SNR = whole-file power ratio.
+    # Speech: dsp/liftmag/data/talker_a.flac (synthetic); SNR = whole-file power ratio.
     s, _ = talker_a
     noisy = s + _white_noise_at_snr(s, true_snr_db, seed=int(true_snr_db) + 11)
     assert metrics.wada_snr_db(noisy) == pytest.approx(true_snr_db, abs=3.0)

@@ -274,7 +274,7 @@ def test_room_tone_continues_the_take_without_changing_it(demo):
 
 
 def test_packaged_speech_is_as_documented():
-    # dsp/data/README.md: mono 16 kHz, peak -3 dBFS, talker_a ~10.5 s, talker_b ~46 s.
+    # dsp/liftmag/data/README.md: mono 16 kHz, peak -3 dBFS, talker_a ~10.5 s, talker_b ~46 s.
     for name, seconds in (("talker_a", 10.5), ("talker_b", 46.1)):
         x, fs = scenes.load_speech(name)
         assert fs == FS and x.ndim == 1

@@ -1,6 +1,6 @@
 """liftmag: multi-microphone dialogue cleaning with linear and lifted magnitude estimators.
 
-The package is imported as ``liftmag``; its source lives in the ``dsp/`` folder.
+The package lives in ``dsp/liftmag/``; ``dsp/`` is the source root.
 The DSP core (geometry, lift, estimators, patterns, engine) is pure numpy/scipy:
 arrays in, arrays out, no I/O. Command-line verbs live in ``liftmag.commands``.
 """

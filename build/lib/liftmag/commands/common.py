@@ -1,0 +1,139 @@
+"""Pieces shared by the verbs: settings options generated from ``Settings``, progress, output."""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import sys
+from collections.abc import Callable
+from typing import Any
+
+from liftmag.settings import ESTIMATOR_HELP, Settings, settings_fields
+
+CLI_HIDDEN_FIELDS = ("bypass",)  # a host control; on the command line, use passthrough
+
+
+def option_name(field_name: str) -> str:
+    """``reduction_limit_db`` -> ``--reduction-limit-db``."""
+    return "--" + field_name.replace("_", "-")
+
+
+def _describe(f: dataclasses.Field) -> str:
+    meta = f.metadata
+    text = meta["help"]
+    if meta.get("unit") and meta.get("minimum") is not None:
+        text += f" [{meta['minimum']:g}..{meta['maximum']:g} {meta['unit']}]"
+    if f.default not in (None, ()) and not isinstance(f.default, bool):
+        text += f" (default: {f.default})"
+    return text
+
+
+def add_settings_arguments(parser: argparse.ArgumentParser) -> None:
+    """Add one option per ``Settings`` field (except host-only ones), with its help and range."""
+    group = parser.add_argument_group("processing settings")
+    for f in settings_fields():
+        if f.name in CLI_HIDDEN_FIELDS:
+            continue
+        meta = f.metadata
+        kwargs: dict[str, Any] = {"dest": f.name, "default": None, "help": _describe(f)}
+        if meta.get("choices"):
+            kwargs["choices"] = meta["choices"]
+            kwargs["metavar"] = "{" + ",".join(meta["choices"]) + "}"
+            if f.name == "estimator":
+                kwargs["help"] += ". " + "; ".join(f"{k}: {v}" for k, v in ESTIMATOR_HELP.items())
+        elif f.name == "null_deg":
+            kwargs["type"] = _float_list
+            kwargs["metavar"] = "DEG[,DEG...]"
+        elif isinstance(f.default, int) and not isinstance(f.default, bool):
+            kwargs["type"] = int
+        else:
+            kwargs["type"] = float
+        group.add_argument(option_name(f.name), **kwargs)
+
+
+def _float_list(text: str) -> tuple[float, ...]:
+    try:
+        return tuple(float(part) for part in text.split(",") if part.strip())
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(f"expected numbers separated by commas: {text}") from exc
+
+
+def settings_from_args(args: argparse.Namespace, **overrides: Any) -> Settings:
+    """Build validated ``Settings`` from parsed options (unset options keep their defaults)."""
+    from liftmag.cli import UserError
+
+    values = {
+        f.name: getattr(args, f.name)
+        for f in settings_fields()
+        if getattr(args, f.name, None) is not None
+    }
+    values.update({k: v for k, v in overrides.items() if v is not None})
+    try:
+        return Settings(**values)
+    except ValueError as exc:
+        raise UserError(str(exc)) from exc
+
+
+def parse_region(text: str) -> tuple[float, float]:
+    """``"START:END"`` in seconds -> (start, end)."""
+    try:
+        start, end = (float(part) for part in text.split(":"))
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(
+            f"a region is START:END in seconds, e.g. 0.5:4.0; got {text!r}"
+        ) from exc
+    return start, end
+
+
+def progress_bar(label: str, total: int, unit_scale: float) -> Callable[[int, int], None] | None:
+    """A tqdm bar on stderr for long work (hidden when stderr is not a terminal)."""
+    from tqdm import tqdm
+
+    bar = tqdm(
+        total=round(total / unit_scale, 1), desc=label, unit="s", leave=False,
+        disable=not sys.stderr.isatty(), file=sys.stderr, mininterval=0.5,
+        bar_format="{desc}: {percentage:3.0f}%|{bar}| {n:.0f}/{total:.0f} s of audio "
+                   "[{elapsed}<{remaining}]",
+    )
+
+    def update(done: int, _total: int) -> None:
+        bar.n = round(done / unit_scale, 1)
+        bar.refresh()
+        if done >= _total:
+            bar.close()
+
+    return update
+
+
+def print_json(data: Any) -> None:
+    json.dump(data, sys.stdout, indent=2, default=str)
+    sys.stdout.write("\n")
+
+
+CAUTION = (
+    "Enhanced audio is not the original recording: keep the originals, and use the "
+    "unprocessed file for any forensic or evidential purpose. Start playback at a low "
+    "monitoring level."
+)
+
+
+def settings_table_markdown() -> str:
+    """The settings table of the README, generated from ``Settings`` (a test keeps them equal)."""
+    lines = [
+        "| option | LV2 control | default | range / choices | what it does |",
+        "|---|---|---|---|---|",
+    ]
+    for f in settings_fields():
+        meta = f.metadata
+        option = "(host only)" if f.name in CLI_HIDDEN_FIELDS else f"`{option_name(f.name)}`"
+        port = meta["lv2_label"] if meta.get("lv2_port") else ""
+        default = "unset" if f.default in (None, ()) else f"{f.default}"
+        if meta.get("choices"):
+            span = ", ".join(meta["choices"])
+        elif meta.get("minimum") is not None:
+            span = f"{meta['minimum']:g} to {meta['maximum']:g} {meta.get('unit', '')}".strip()
+        else:
+            span = "on / off"
+        lines.append(f"| {option} | {port} | {default} | {span} | {meta['help']} |")
+    return "\n".join(lines)

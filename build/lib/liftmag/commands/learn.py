@@ -1,0 +1,65 @@
+"""``liftmag learn``: learn a reusable noise model from room tone."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from liftmag.commands.common import parse_region, print_json
+
+HELP = (
+    "Learn a noise model from room tone (a recording of the location with nobody "
+    "talking, 30 s is ordinary practice) and save it for `liftmag process --noise-model`. "
+    "All of the recording is used; give --region to use only parts of it."
+)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("inputs", nargs="+", metavar="ROOMTONE", help="room-tone file(s)")
+    parser.add_argument("-o", "--output", required=True, help="noise model file (.npz)")
+    parser.add_argument(
+        "--region", action="append", type=parse_region, default=[], metavar="START:END",
+        help="use only this stretch, in seconds (repeatable)",
+    )
+    parser.add_argument(
+        "--frame-s", type=float, default=None,
+        help="STFT frame length; must match the one used when processing (default 0.128)",
+    )
+    parser.add_argument("--force", action="store_true", help="replace an existing model file")
+    parser.add_argument("--json", action="store_true", help="print a JSON summary on stdout")
+
+
+def run(args: argparse.Namespace) -> int:
+    from liftmag.audio_io import AudioInputError, write_atomically
+    from liftmag.cli import UserError
+    from liftmag.fileproc import learn_noise, open_source
+    from liftmag.settings import Settings
+
+    out = Path(args.output)
+    if out.exists() and not args.force:
+        raise UserError(f"{out} exists; add --force to replace it")
+    try:
+        settings = Settings() if args.frame_s is None else Settings(frame_s=args.frame_s)
+        source = open_source(args.inputs)
+        model = learn_noise(
+            source, settings, args.region,
+            description="learned from " + ", ".join(Path(p).name for p in args.inputs),
+        )
+    except (AudioInputError, ValueError) as exc:
+        raise UserError(str(exc)) from exc
+    data = model.to_bytes()
+    out.parent.mkdir(parents=True, exist_ok=True)
+    write_atomically(out, data)
+    summary = {
+        "output": str(out), "channels": model.n_channels, "sample_rate_hz": model.sample_rate_hz,
+        "frames": model.frames, "duration_s": round(model.duration_s, 3),
+        "frame_length": model.frame_length, "hop": model.hop,
+    }
+    if args.json:
+        print_json(summary)
+    else:
+        print(
+            f"wrote {out}: {model.n_channels}-channel noise model from "
+            f"{model.duration_s:.1f} s of room tone at {model.sample_rate_hz:g} Hz"
+        )
+    return 0

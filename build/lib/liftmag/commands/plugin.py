@@ -1,0 +1,213 @@
+"""``liftmag plugin``: install the LV2 plugin bundle, or show what is installed."""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import json
+import os
+import shutil
+import sys
+import tempfile
+from pathlib import Path
+from types import ModuleType
+from typing import Any
+
+HELP = (
+    "Install the LV2 plugin (urn:liftmag:dialogue-2ch and -4ch) so audio editors that host "
+    "LV2 effects can apply liftmag to a selection, or show what is installed. The plugin "
+    "is meant for offline rendering: it runs the same Python engine as `liftmag process` "
+    "and is not hard real-time capable."
+)
+
+BUNDLE_NAME = "liftmag.lv2"
+BUILD_INFO = "build-info.json"
+# lilv's default search path on Linux, used when LV2_PATH is unset (lilv, src/lilv_config.h).
+DEFAULT_LV2_PATH = ("~/.lv2", "/usr/local/lib/lv2", "/usr/lib/lv2")
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    sub = parser.add_subparsers(dest="action", metavar="ACTION", required=True)
+    install = sub.add_parser(
+        "install", help="build the bundle if needed and copy it into an LV2 folder",
+        description="Build build/liftmag.lv2 if it is missing or older than the sources, "
+                    "then copy it to DEST/liftmag.lv2 (replacing an earlier liftmag install).",
+    )
+    install.add_argument("--dest", type=Path, default=None,
+                         help="LV2 folder to install into (default: ~/.lv2)")
+    install.add_argument("--rebuild", action="store_true",
+                         help="build the bundle even if it looks current")
+    install.add_argument("--bundle", type=Path, default=None,
+                         help="install this already built liftmag.lv2 instead of building")
+    info = sub.add_parser("info", help="show installed liftmag bundles and their build",
+                          description="List liftmag bundles in DEST and in LV2_PATH.")
+    info.add_argument("--dest", type=Path, default=None,
+                      help="also look in this LV2 folder (default: ~/.lv2)")
+    info.add_argument("--json", action="store_true", help="print JSON on stdout")
+
+
+def default_dest() -> Path:
+    # Path.home() falls back to the password database when HOME is unset (env -i).
+    return Path.home() / ".lv2"
+
+
+def log_file() -> Path:
+    """Where the plugin logs (the same rule as plugin/shim.c)."""
+    state = os.environ.get("XDG_STATE_HOME", "")
+    if state.startswith("/"):
+        return Path(state) / "liftmag" / "lv2-plugin.log"
+    return Path.home() / ".cache" / "liftmag" / "lv2-plugin.log"
+
+
+def lv2_search_path() -> list[Path]:
+    """The folders LV2 hosts built on lilv search (LV2_PATH, else lilv's default)."""
+    text = os.environ.get("LV2_PATH")
+    parts = text.split(os.pathsep) if text else list(DEFAULT_LV2_PATH)
+    return [Path(p).expanduser() for p in parts if p]
+
+
+def source_checkout() -> Path | None:
+    """The liftmag source tree this package runs from, if it has the plugin sources."""
+    import liftmag
+
+    repo = Path(liftmag.__file__).resolve().parent.parent
+    needed = (repo / "build" / "build_bundle.py", repo / "plugin" / "shim.c")
+    return repo if all(p.is_file() for p in needed) else None
+
+
+def _build_module(repo: Path) -> ModuleType:
+    spec = importlib.util.spec_from_file_location("liftmag_build_bundle",
+                                                  repo / "build" / "build_bundle.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def read_info(bundle: Path) -> dict[str, Any] | None:
+    try:
+        return json.loads((bundle / BUILD_INFO).read_text())
+    except (OSError, ValueError):
+        return None
+
+
+def _ensure_bundle(rebuild: bool) -> Path:
+    from liftmag.cli import UserError
+
+    repo = source_checkout()
+    if repo is None:
+        raise UserError(
+            "the plugin is built from a liftmag source checkout, and this installation has "
+            "none; clone the repository and run `make plugin` there"
+        )
+    builder = _build_module(repo)
+    bundle = builder.DEFAULT_OUT
+    if not rebuild and builder.is_current(bundle):
+        return bundle
+    if not Path("/usr/include/lv2/core/lv2.h").is_file():
+        raise UserError("the LV2 headers are missing; install lv2-dev (make system-deps)")
+    print(f"building {bundle} ...", file=sys.stderr)
+    try:
+        return builder.build_bundle(bundle)
+    except Exception as exc:  # compiler and cffi errors come in many classes
+        raise UserError(
+            f"building the plugin failed ({exc.__class__.__name__}: {exc}); it needs a C "
+            "compiler, the Python headers and lv2-dev (make system-deps)"
+        ) from exc
+
+
+def install(bundle: Path, dest: Path) -> Path:
+    """Copy ``bundle`` to ``dest/liftmag.lv2`` whole (no half-copied bundle is ever seen)."""
+    from liftmag.cli import UserError
+
+    target = dest / BUNDLE_NAME
+    if target.exists() and read_info(target) is None:
+        raise UserError(f"{target} exists and is not a liftmag bundle; not replacing it")
+    dest.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=f".{BUNDLE_NAME}.", dir=dest))
+    try:
+        copied = stage / BUNDLE_NAME
+        shutil.copytree(bundle, copied, ignore=shutil.ignore_patterns("__pycache__"))
+        os.chmod(copied, 0o755)
+        if target.exists():
+            shutil.rmtree(target)
+        copied.replace(target)
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+    return target
+
+
+def _bundles(dest: Path) -> list[Path]:
+    seen: list[Path] = []
+    for folder in [dest, *lv2_search_path()]:
+        candidate = (folder / BUNDLE_NAME).resolve()
+        if candidate not in seen and (candidate / BUILD_INFO).is_file():
+            seen.append(candidate)
+    return seen
+
+
+def describe(bundle: Path) -> dict[str, Any]:
+    """What ``liftmag plugin info`` reports for one bundle."""
+    info = read_info(bundle) or {}
+    python = info.get("venv_python", "")
+    record: dict[str, Any] = {
+        "bundle": str(bundle),
+        "plugins": [p.get("uri") for p in info.get("plugins", [])],
+        "liftmag_version": info.get("liftmag_version"),
+        "built_at": info.get("built_at"),
+        "python": python,
+        "python_present": bool(python) and os.access(python, os.X_OK),
+        "block_frames": info.get("block_frames"),
+        "in_lv2_path": any(bundle.parent == p.resolve() for p in lv2_search_path()),
+        "current": None,
+    }
+    repo = source_checkout()
+    if repo is not None and python:
+        digest = _build_module(repo).source_digest(python)
+        record["current"] = digest == info.get("source_digest")
+    return record
+
+
+def run(args: argparse.Namespace) -> int:
+    from liftmag.cli import UserError
+
+    dest = (args.dest or default_dest()).expanduser()
+    if args.action == "install":
+        if args.bundle is not None:
+            bundle = args.bundle.expanduser().resolve()
+            if read_info(bundle) is None:
+                raise UserError(f"{bundle} is not a built liftmag bundle (no {BUILD_INFO})")
+        else:
+            bundle = _ensure_bundle(args.rebuild)
+        target = install(bundle, dest)
+        record = describe(target)
+        print(f"installed {', '.join(record['plugins'])} into {target}")
+        if not record["in_lv2_path"]:
+            print(f"note: hosts do not look in {dest}; add it to LV2_PATH")
+        if not record["python_present"]:
+            print(f"warning: the plugin's Python ({record['python']}) is missing; it will "
+                  "pass audio through unprocessed")
+        print("The plugin is for offline rendering (not hard real-time). Enhanced audio is "
+              "not the original: keep the original take and check levels before playback.")
+        return 0
+
+    records = [describe(b) for b in _bundles(dest)]
+    if args.json:
+        json.dump({"bundles": records, "log_file": str(log_file())}, sys.stdout, indent=2)
+        sys.stdout.write("\n")
+        return 0
+    if not records:
+        print(f"no liftmag bundle in {dest} or LV2_PATH; run `liftmag plugin install`")
+    for r in records:
+        state = {True: "yes", False: "no (run `liftmag plugin install` again)",
+                 None: "unknown (no source checkout)"}[r["current"]]
+        print(f"{r['bundle']}")
+        print(f"  plugins:        {', '.join(r['plugins'])}")
+        print(f"  built:          {r['built_at']} (liftmag {r['liftmag_version']})")
+        print(f"  python:         {r['python']}"
+              + ("" if r["python_present"] else "  (MISSING: audio passes through)"))
+        print(f"  block, frames:  {r['block_frames']} (part of the reported latency)")
+        print(f"  in LV2 path:    {'yes' if r['in_lv2_path'] else 'no'}")
+        print(f"  up to date:     {state}")
+    print(f"log file: {log_file()}")
+    return 0

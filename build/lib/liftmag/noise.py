@@ -1,0 +1,304 @@
+"""Noise statistics: running moments, reusable noise models, and the spiked regulariser.
+
+The engine keeps, per STFT bin, weighted running sums of the noise snapshot's outer product
+``v v^H`` and of its lifted second moment ``rho rho^T`` (fourth-order statistics). A
+:class:`NoiseModel` is a snapshot of those moments that a user can learn once from room
+tone and apply to every take.
+
+The lifted noise covariance is estimated from few frames (``M^4`` entries per bin), so it is
+regularised (:func:`spiked_lift_covariance`): in the noise-whitened domain a circular
+Gaussian noise has identity lifted covariance, and a sample estimate from ``N`` frames has
+its eigenvalues spread over the Marchenko-Pastur bulk ``[(1 - sqrt(q))^2, (1 + sqrt(q))^2]``
+with ``q = M^2 / N`` (Marchenko & Pastur 1967). Only eigen-directions that lie clearly
+outside that bulk are kept; the rest are set to the Gaussian model. On Gaussian noise the
+lifted estimators then reduce to the linear ones.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from liftmag.lift import lift_dimension, lift_snapshots, lift_transform, rho, unrho
+
+FORMAT_VERSION = 1
+MIN_LIFT_EIGENVALUE = 0.01  # floor of a kept eigenvalue, relative to the Gaussian model
+FORMAT_NAME = "liftmag-noise-model"
+
+
+@dataclass(frozen=True)
+class NoiseModel:
+    """Noise statistics per STFT bin, learned from room tone or tracked while processing.
+
+    Attributes
+    ----------
+    covariance : (F, M, M) complex   ``E[v v^H]`` per bin
+    lift_second_moment : (F, D, D) real   ``E[rho(v v^H) rho(v v^H)^T]``, D = M^2
+    frames : float   effective number of frames behind the estimates
+    sample_rate_hz, frame_length, hop, n_channels : the STFT geometry it belongs to
+    description : free text (where it was learned)
+    """
+
+    covariance: NDArray[np.complex128]
+    lift_second_moment: NDArray[np.float64]
+    frames: float
+    sample_rate_hz: float
+    frame_length: int
+    hop: int
+    n_channels: int
+    description: str = ""
+
+    def __post_init__(self) -> None:
+        f, m = self.covariance.shape[0], self.n_channels
+        d = lift_dimension(m)
+        if self.covariance.shape != (f, m, m) or self.lift_second_moment.shape != (f, d, d):
+            raise ValueError("noise model arrays do not match its channel count")
+        if f != self.frame_length // 2 + 1:
+            raise ValueError("noise model arrays do not match its frame length")
+
+    @property
+    def duration_s(self) -> float:
+        return self.frames * self.hop / self.sample_rate_hz
+
+    def mismatch(self, sample_rate_hz: float, frame_length: int, hop: int, n_channels: int) -> str:
+        """Empty if the model fits this geometry, else a sentence naming what differs."""
+        problems = []
+        if self.sample_rate_hz != sample_rate_hz:
+            problems.append(f"sample rate {self.sample_rate_hz:g} Hz vs {sample_rate_hz:g} Hz")
+        if self.n_channels != n_channels:
+            problems.append(f"{self.n_channels} channels vs {n_channels}")
+        if (self.frame_length, self.hop) != (frame_length, hop):
+            problems.append(
+                f"STFT frame/hop {self.frame_length}/{self.hop} vs {frame_length}/{hop} samples"
+            )
+        if not problems:
+            return ""
+        return "the noise model does not match this take: " + "; ".join(problems)
+
+    def to_bytes(self) -> bytes:
+        """Serialise as an ``.npz`` archive (arrays plus a JSON metadata entry)."""
+        meta = {
+            "format": FORMAT_NAME,
+            "format_version": FORMAT_VERSION,
+            "frames": self.frames,
+            "sample_rate_hz": self.sample_rate_hz,
+            "frame_length": self.frame_length,
+            "hop": self.hop,
+            "n_channels": self.n_channels,
+            "description": self.description,
+        }
+        buf = io.BytesIO()
+        np.savez_compressed(
+            buf,
+            covariance=self.covariance,
+            lift_second_moment=self.lift_second_moment,
+            metadata=np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8),
+        )
+        return buf.getvalue()
+
+    @classmethod
+    def from_bytes(cls, data: bytes) -> NoiseModel:
+        """Inverse of :meth:`to_bytes`; refuses other formats and newer versions clearly."""
+        try:
+            with np.load(io.BytesIO(data), allow_pickle=False) as archive:
+                meta = json.loads(archive["metadata"].tobytes().decode())
+                cov = archive["covariance"]
+                lift2 = archive["lift_second_moment"]
+        except Exception as exc:  # zip, key or JSON errors all mean "not our model"
+            raise ValueError(f"not a liftmag noise model ({exc.__class__.__name__})") from exc
+        if meta.get("format") != FORMAT_NAME:
+            raise ValueError("not a liftmag noise model (format tag missing)")
+        if int(meta.get("format_version", 0)) > FORMAT_VERSION:
+            raise ValueError(
+                f"noise model format version {meta['format_version']} is newer than this "
+                f"liftmag understands ({FORMAT_VERSION}); update liftmag"
+            )
+        return cls(
+            covariance=cov, lift_second_moment=lift2, frames=float(meta["frames"]),
+            sample_rate_hz=float(meta["sample_rate_hz"]), frame_length=int(meta["frame_length"]),
+            hop=int(meta["hop"]), n_channels=int(meta["n_channels"]),
+            description=str(meta.get("description", "")),
+        )
+
+
+class MomentAccumulator:
+    """Weighted running moments with exponential forgetting (or none, ``forgetting=1``).
+
+    Keeps ``S1 = sum w_n a^(N-n) y y^H``, ``S2 = sum w_n a^(N-n) rho rho^T``, the weight sum
+    ``W = sum w_n a^(N-n)`` and ``W2 = sum (w_n a^(N-n))^2``, so means are bias-free from the
+    first frame and ``W^2 / W2`` is the effective number of frames (Kish's effective sample
+    size) for the regulariser.
+    """
+
+    def __init__(self, n_bins: int, n_channels: int, with_lift: bool = True) -> None:
+        d = lift_dimension(n_channels)
+        # The covariance is kept as its real lift: rho is linear, so the weighted sum of
+        # rho(y y^H) is rho of the weighted sum of y y^H, and it costs a plain weighted sum.
+        self.lift_first = np.zeros((n_bins, d))
+        self.lift_sum = np.zeros((n_bins, d, d)) if with_lift else None
+        self.weight = np.zeros(n_bins)
+        self.weight_sq = np.zeros(n_bins)
+        self.version = 0  # bumped by every change, so derived values can be cached
+
+    def update(
+        self,
+        y: NDArray[np.complex128],
+        weight: NDArray,
+        forgetting: float,
+        lifted: NDArray[np.float64] | None = None,
+    ) -> None:
+        """Add frames ``y`` (K, F, M) or one frame (F, M) with weights (K, F), (F,) or scalar.
+
+        Equivalent to K sequential updates ``S <- forgetting * S + w_k x_k``, computed at once
+        as ``forgetting^K S + sum_k forgetting^(K-1-k) w_k x_k``. ``lifted`` may pass
+        ``lift_snapshots(y)`` when the caller has it already.
+        """
+        y = np.asarray(y)
+        if y.ndim == 2:
+            y = y[None]
+        k_frames, n_bins = y.shape[:2]
+        w = np.broadcast_to(np.asarray(weight, dtype=float), (k_frames, n_bins))
+        decay = forgetting ** np.arange(k_frames - 1, -1, -1, dtype=float)
+        wd = w * decay[:, None]
+        keep = forgetting**k_frames
+        r = lift_snapshots(y) if lifted is None else lifted
+        weighted = r * wd[:, :, None]
+        self.lift_first *= keep
+        self.lift_first += weighted.sum(axis=0)
+        if self.lift_sum is not None:
+            self.lift_sum *= keep
+            # Per bin (D x K) @ (K x D): one batched product, a little faster than einsum.
+            self.lift_sum += np.matmul(weighted.transpose(1, 2, 0), r.transpose(1, 0, 2))
+        self.weight = keep * self.weight + wd.sum(axis=0)
+        self.weight_sq = keep**2 * self.weight_sq + (wd**2).sum(axis=0)
+        self.version += 1
+
+    def seed(self, model: NoiseModel) -> None:
+        """Start from a model, counting it as ``model.frames`` frames of evidence."""
+        n = model.frames
+        self.lift_first = rho(model.covariance) * n
+        if self.lift_sum is not None:
+            self.lift_sum = model.lift_second_moment * n
+        self.weight = np.full(self.weight.shape, n)
+        self.weight_sq = np.full(self.weight.shape, n)
+        self.version += 1
+
+    def means(self) -> tuple[NDArray[np.complex128], NDArray[np.float64] | None]:
+        w = np.maximum(self.weight, 1e-300)
+        cov = unrho(self.lift_first / w[:, None])
+        lift = None if self.lift_sum is None else self.lift_sum / w[:, None, None]
+        return cov, lift
+
+    def effective_frames(self) -> NDArray[np.float64]:
+        return self.weight**2 / np.maximum(self.weight_sq, 1e-300)
+
+
+def lift_whitening(whitener: NDArray[np.complex128]) -> NDArray[np.float64]:
+    """Real matrix ``B`` with ``rho(A Y A^H) = B rho(Y)`` for per-bin matrices ``A`` (F, M, M).
+
+    ``B = T (conj(A) kron A) T^H`` with ``T`` from :func:`liftmag.lift.lift_transform`.
+    """
+    m = whitener.shape[-1]
+    t = lift_transform(m)
+    kron = (np.conj(whitener)[:, :, None, :, None] * whitener[:, None, :, None, :]).reshape(
+        whitener.shape[0], m * m, m * m
+    )
+    return np.real(t @ kron @ t.conj().T)
+
+
+def whitened_lift_covariance(
+    covariance: NDArray[np.complex128],
+    lift_second_moment: NDArray[np.float64],
+    whitener: NDArray[np.complex128],
+) -> NDArray[np.float64]:
+    """Covariance of the lifted *whitened* noise, ``B (E[rho rho^T] - mu mu^T) B^T``."""
+    from liftmag.lift import rho
+
+    mu = rho(covariance)
+    c = lift_second_moment - mu[:, :, None] * mu[:, None, :]
+    b = lift_whitening(whitener)
+    out = b @ c @ np.swapaxes(b, -1, -2)
+    return (out + np.swapaxes(out, -1, -2)) / 2
+
+
+def spiked_lift_factors(
+    whitened_cov: NDArray[np.float64],
+    effective_frames: NDArray,
+    threshold: float = 1.5,
+    mostly_structured: bool = False,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.int_]]:
+    """Eigen-factors of :func:`spiked_lift_covariance`: ``regularised = U diag(values) U^T``.
+
+    Returns ``(values (F, D), U (F, D, D), n_spikes (F,))``; bins without structure get
+    ``values = 1`` and ``U = I``. The engine uses the factors directly (the inverse square
+    root is ``diag(values^-1/2) U^T``), so no further decomposition is needed.
+    ``mostly_structured`` only changes the cost: when most bins are expected to have
+    structure, every bin is decomposed at once instead of screening eigenvalues first.
+    """
+    d = whitened_cov.shape[-1]
+    n = np.maximum(np.asarray(effective_frames, dtype=float), 1.0)
+    q = d / n
+    upper = threshold * (1 + np.sqrt(q)) ** 2
+    lower = np.where(q < 1, (1 - np.sqrt(np.minimum(q, 1))) ** 2 / threshold, 0.0)
+    if mostly_structured:
+        lam_all, u_all = np.linalg.eigh(whitened_cov)
+    else:  # eigenvalues alone decide which bins have structure; eigenvectors only for those
+        lam_all, u_all = np.linalg.eigvalsh(whitened_cov), None
+    spiky = np.flatnonzero(
+        np.any((lam_all > upper[:, None]) | (lam_all < lower[:, None]), axis=-1)
+    )
+    values = np.ones(whitened_cov.shape[:-1])
+    vectors = np.broadcast_to(np.eye(d), whitened_cov.shape).copy()
+    n_spikes = np.zeros(whitened_cov.shape[0], dtype=int)
+    if spiky.size:
+        if u_all is None:
+            lam, u = np.linalg.eigh(whitened_cov[spiky])
+        else:
+            lam, u = lam_all[spiky], u_all[spiky]
+        keep = (lam > upper[spiky, None]) | (lam < lower[spiky, None])
+        # Even a steady tone rides on some sensor noise: never trust a direction as noise-free.
+        values[spiky] = np.where(keep, np.maximum(lam, MIN_LIFT_EIGENVALUE), 1.0)
+        vectors[spiky] = u
+        n_spikes[spiky] = keep.sum(axis=-1)
+    return values, vectors, n_spikes
+
+
+def spiked_lift_covariance(
+    whitened_cov: NDArray[np.float64], effective_frames: NDArray, threshold: float = 1.5
+) -> tuple[NDArray[np.float64], NDArray[np.int_]]:
+    """Keep the eigen-directions outside the Gaussian bulk; set the rest to the identity.
+
+    Parameters
+    ----------
+    whitened_cov : (F, D, D)   sample covariance of the whitened noise lift
+    effective_frames : (F,)    effective number of frames behind it
+    threshold : float          an eigenvalue counts as structure when it exceeds
+        ``threshold * (1 + sqrt(q))^2`` or is below ``(1 - sqrt(q))^2 / threshold``, with
+        ``q = D / N`` (Marchenko-Pastur edges for an identity population covariance).
+
+    Returns
+    -------
+    regularised : (F, D, D)  ``I + sum_k (lambda_k - 1) u_k u_k^T`` over the kept directions,
+                             with ``lambda_k`` floored at ``MIN_LIFT_EIGENVALUE``
+    n_spikes : (F,)          number of kept directions per bin (0 = Gaussian-looking)
+    """
+    values, vectors, n_spikes = spiked_lift_factors(whitened_cov, effective_frames, threshold)
+    regularised = np.einsum("fik,fk,fjk->fij", vectors, values, vectors)
+    return (regularised + np.swapaxes(regularised, -1, -2)) / 2, n_spikes
+
+
+def shrunk_lift_covariance(
+    whitened_cov: NDArray[np.float64], effective_frames: NDArray
+) -> NDArray[np.float64]:
+    """Linear shrinkage towards the Gaussian model: ``(1 - beta) C + beta I``, ``beta = D/(D+N)``.
+
+    A plain, documented alternative to :func:`spiked_lift_covariance` (used by the forced
+    ``lifted-mv`` estimator so the two regularisers can be compared).
+    """
+    d = whitened_cov.shape[-1]
+    beta = d / (d + np.maximum(np.asarray(effective_frames, dtype=float), 1.0))
+    return (1 - beta)[:, None, None] * whitened_cov + beta[:, None, None] * np.eye(d)
