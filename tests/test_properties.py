@@ -1,7 +1,7 @@
 """Property tests (hypothesis) of the estimators' array contract.
 
 Sources: the contract stated in liftmag.estimators' module docstring (every function
-broadcasts over leading axes; quadratic estimates are real) and the design note's lift
+broadcasts over leading axes; quadratic estimates are real) and the lift of docs/estimators.md §2
 (w . rho(y y^H) = y^H H y is real for Hermitian H). Bins are independent problems, so
 reordering them must reorder the outputs and nothing else. NaN input must be refused with
 ValueError rather than spread silently through a solve.
