@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from randmat import crandn, random_covariance
 from scipy import optimize
 
 from liftmag import estimators as est
@@ -26,15 +27,6 @@ from liftmag.lift import (
 from liftmag.study import noise_field
 
 RNG = np.random.default_rng(7)
-
-
-def random_covariance(m: int, rng: np.random.Generator) -> np.ndarray:
-    a = rng.standard_normal((m, m)) + 1j * rng.standard_normal((m, m))
-    return a @ a.conj().T / m + 0.05 * np.eye(m)
-
-
-def crandn(rng: np.random.Generator, *shape: int) -> np.ndarray:
-    return (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)) / np.sqrt(2)
 
 
 def two_mic(frequency_hz: float, spacing_m: float = 0.08):
@@ -53,7 +45,7 @@ def test_delay_sum_and_mvdr_are_distortionless_and_mvdr_minimises_noise() -> Non
     m = 4
     g = np.exp(1j * RNG.uniform(0, 2 * np.pi, m))
     g[0] = 1.0
-    phi = random_covariance(m, RNG)
+    phi = random_covariance(m, RNG, loading=0.05)
     for h in (est.delay_sum_weights(g), est.mvdr_weights(g, phi)):
         np.testing.assert_allclose(np.vdot(h, g), 1.0, atol=1e-13)
     h = est.mvdr_weights(g, phi)
@@ -177,7 +169,7 @@ def test_lifted_mv_equals_mvdr_power_minus_residual_in_gaussian_noise(m: int) ->
     # K(X) = g g^H X + X g g^H): P_mv = |h_mvdr^H y|^2 - 1/(g^H Phi^-1 g) for every prior.
     g = crandn(RNG, m)
     g = g / g[0]
-    phi = random_covariance(m, RNG)
+    phi = random_covariance(m, RNG, loading=0.05)
     c_v = gaussian_lift_covariance(phi)
     k = crossterm_lift_covariance(g, phi)
     rho_g = rho(est.outer(g))

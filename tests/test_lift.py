@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from randmat import random_covariance
 
 from liftmag.estimators import linear_as_lifted, outer
 from liftmag.lift import (
@@ -33,11 +34,6 @@ RNG = np.random.default_rng(20240517)
 def random_hermitian(m: int, rng: np.random.Generator, n: int = 1) -> np.ndarray:
     a = rng.standard_normal((n, m, m)) + 1j * rng.standard_normal((n, m, m))
     return (a + np.conj(np.swapaxes(a, -1, -2))) / 2
-
-
-def random_covariance(m: int, rng: np.random.Generator) -> np.ndarray:
-    a = rng.standard_normal((m, m)) + 1j * rng.standard_normal((m, m))
-    return a @ a.conj().T / m + 0.1 * np.eye(m)
 
 
 @pytest.mark.parametrize("m", [1, 2, 3, 4, 6])
@@ -80,7 +76,7 @@ def test_gaussian_lift_covariance_matches_monte_carlo_and_is_identity_when_white
     # power: identity (each lifted entry has unit variance and they are uncorrelated).
     m = 3
     np.testing.assert_allclose(gaussian_lift_covariance(np.eye(m)), np.eye(m * m), atol=1e-15)
-    phi = random_covariance(m, RNG)
+    phi = random_covariance(m, RNG, loading=0.1)
     n = 400_000
     white = (RNG.standard_normal((n, m)) + 1j * RNG.standard_normal((n, m))) / np.sqrt(2)
     v = white @ np.linalg.cholesky(phi).T

@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from randmat import crandn
 
 from liftmag import estimators as est
 from liftmag.lift import crossterm_lift_covariance, gaussian_lift_covariance, lift_snapshots, rho
@@ -24,10 +25,6 @@ SETTINGS = settings(max_examples=25, deadline=None,
 lead_shapes = st.lists(st.integers(1, 3), min_size=0, max_size=2).map(tuple)
 mic_counts = st.sampled_from([2, 3])
 seeds = st.integers(0, 2**31 - 1)
-
-
-def crandn(rng: np.random.Generator, *shape: int) -> np.ndarray:
-    return (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)) / np.sqrt(2)
 
 
 def problem(lead: tuple[int, ...], m: int, seed: int, n_frames: int = 5) -> dict:
