@@ -411,3 +411,82 @@ def test_tracks_of_a_sparse_rf64_file_beyond_4_gib(tmp_path: Path) -> None:
     assert info.frames == frames and info.channels == 4
     assert [t.name for t in source_tracks(info)] == list(NAMES)
     assert rc.parse_bext(rc.read_bext(big)).time_reference_samples == TIME_REFERENCE
+
+
+# ---------------------------------------------------------------------- batch
+
+
+def stem_ixml(name: str, recorder_track: int) -> bytes:
+    # A recorder writing one file per track: each stem's TRACK_LIST names its one track,
+    # CHANNEL_INDEX the recorder's track number, INTERLEAVE_INDEX 1 (iXML specification).
+    return ixml_payload(names=(name,), channel_indices=(recorder_track,))
+
+
+@pytest.fixture()
+def stems(tmp_path: Path, four_track) -> Path:
+    folder = tmp_path / "card"
+    folder.mkdir()
+    for k, name in enumerate(NAMES[:3], start=1):
+        write_take(
+            folder / f"sc12_tk3_{k}.wav", four_track[k - 1 : k],
+            [("bext", bext_payload()), ("iXML", stem_ixml(name, k))],
+        )
+    return folder
+
+
+def test_batch_grouped_stems_keep_their_metadata_true(tmp_path: Path, stems: Path, poly: Path,
+                                                      capsys) -> None:
+    out = tmp_path / "out"
+    assert main(["batch", str(stems), "--out", str(out), "--jobs", "1", "--group-by-suffix",
+                 r"_(\d+)$", "--mics", "BOOM,LAV1"]) == 0
+    result = out / "sc12_tk3.wav"
+    check_track_list(result, ["BOOM"], [1])
+    check_kept_metadata(result, stems / "sc12_tk3_1.wav")
+    # Same microphones as the poly file's BOOM and LAV1: the same cleaned sound.
+    single = tmp_path / "single.wav"
+    assert main(["process", str(poly), "-o", str(single), "--mics", "BOOM,LAV1"]) == 0
+    np.testing.assert_array_equal(sf.read(result, dtype="int32")[0],
+                                  sf.read(single, dtype="int32")[0])
+    # Asking for the same tracks re-runs the take (the choice is part of its key).
+    capsys.readouterr()
+    assert main(["batch", str(stems), "--out", str(out), "--jobs", "1", "--group-by-suffix",
+                 r"_(\d+)$", "--mics", "BOOM,LAV1", "--output-mode", "same-tracks"]) == 0
+    check_track_list(result, NAMES[:3], [1, 2, 3])
+    check_kept_metadata(result, stems / "sc12_tk3_1.wav")
+    before = np.stack([sf.read(stems / f"sc12_tk3_{k}.wav", dtype="int32")[0]
+                       for k in (2, 3)], axis=1)
+    np.testing.assert_array_equal(sf.read(result, dtype="int32")[0][:, 1:], before)
+
+
+def test_batch_key_follows_the_mics(tmp_path: Path, poly: Path, capsys) -> None:
+    out = tmp_path / "out"
+    args = ["batch", str(poly), "--out", str(out), "--jobs", "1", "--json"]
+    assert main([*args, "--mics", "1,2"]) == 0
+    capsys.readouterr()
+    assert main([*args, "--mics", "1,2"]) == 0
+    assert json.loads(capsys.readouterr().out)["skipped"] == 1
+    assert main([*args, "--mics", "2,1"]) == 0  # a new choice: done again, not skipped
+    assert json.loads(capsys.readouterr().out)["done"] == 1
+    check_track_list(out / "sc12_tk3.wav", ["LAV1"], [2])
+
+
+def test_manifest_mics_column(tmp_path: Path, poly: Path, capsys) -> None:
+    manifest = tmp_path / "takes.csv"
+    manifest.write_text(
+        "input,output,mics,output_mode\n"
+        f'{poly.name},boom.wav,"BOOM,LAV1",\n'
+        f'{poly.name},lav.wav,"LAV1,BOOM",same-tracks\n'
+        f'{poly.name},bad.wav,"BOOM,LAV7",\n'
+    )
+    out = tmp_path / "out"
+    assert main(["batch", "--manifest", str(manifest), "--out", str(out), "--jobs", "1",
+                 "--json"]) == 1
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["done"] == 2 and summary["failed"] == 1
+    assert "no track named 'LAV7'" in summary["failures"][0]["reason"]
+    assert not (out / "bad.wav").exists()
+    check_track_list(out / "boom.wav", ["BOOM"], [1])
+    check_track_list(out / "lav.wav", NAMES, [1, 2, 3, 4])
+    before, _ = sf.read(poly, dtype="int32")
+    after, _ = sf.read(out / "lav.wav", dtype="int32")
+    np.testing.assert_array_equal(after[:, [0, 2, 3]], before[:, [0, 2, 3]])
