@@ -157,6 +157,69 @@ def check_kept_metadata(path: Path, original: Path) -> None:
     assert "liftmag" in added
 
 
+_LIBSNDFILE_CDEF = """
+typedef struct SNDFILE_tag SNDFILE;
+typedef struct { int64_t frames; int samplerate; int channels; int format; int sections;
+                 int seekable; } SF_INFO;
+typedef struct { char description[256]; char originator[32]; char originator_reference[32];
+  char origination_date[10]; char origination_time[8]; uint32_t time_reference_low;
+  uint32_t time_reference_high; short version; char umid[64]; int16_t loudness[5];
+  char reserved[180]; uint32_t coding_history_size; char coding_history[4096]; } BEXT;
+SNDFILE* sf_open(const char*, int, SF_INFO*);
+int sf_command(SNDFILE*, int, void*, int);
+int sf_close(SNDFILE*);
+"""
+SFM_READ, SFC_GET_BROADCAST_INFO = 0x10, 0x10F0  # libsndfile's sndfile.h
+
+
+def libsndfile_bext(path: Path) -> dict:
+    """The bext chunk as libsndfile's own parser reads it (an independent reader).
+
+    SF_BROADCAST_INFO mirrors the EBU Tech 3285 v2 fields; here with room for a long
+    coding history.
+    """
+    import ctypes.util
+    import os
+
+    import cffi
+
+    ffi = cffi.FFI()
+    ffi.cdef(_LIBSNDFILE_CDEF)
+    name = ctypes.util.find_library("sndfile") or os.path.join(
+        os.path.dirname(sf.__file__), "_soundfile_data", sf._packaged_libname
+    )
+    lib = ffi.dlopen(name)
+    info = ffi.new("SF_INFO *")
+    handle = lib.sf_open(str(path).encode(), SFM_READ, info)
+    assert handle != ffi.NULL, f"libsndfile cannot open {path}"
+    try:
+        bext = ffi.new("BEXT *")
+        assert lib.sf_command(handle, SFC_GET_BROADCAST_INFO, bext, ffi.sizeof("BEXT")) == 1
+        return {
+            "description": ffi.string(bext.description, 256).decode(),
+            "time_reference": (bext.time_reference_high << 32) | bext.time_reference_low,
+            "version": bext.version,
+            "coding_history": ffi.string(
+                bext.coding_history, bext.coding_history_size
+            ).decode("ascii"),
+        }
+    finally:
+        lib.sf_close(handle)
+
+
+def test_libsndfile_reads_the_rewritten_bext(tmp_path: Path, poly: Path) -> None:
+    out = tmp_path / "same.wav"
+    assert main(["process", str(poly), "-o", str(out), "--mics", "BOOM,LAV1",
+                 "--output-mode", "same-tracks"]) == 0
+    seen, before = libsndfile_bext(out), libsndfile_bext(poly)
+    assert seen["time_reference"] == before["time_reference"] == TIME_REFERENCE
+    assert seen["description"] == "sc12 tk3" and seen["version"] == 2
+    rows = seen["coding_history"].split("\r\n")
+    assert rows[0] == "A=PCM,F=16000,W=24,M=mono,T=recorder"
+    assert rows[1].startswith("A=PCM,F=16000,W=24,T=liftmag ") and rows[2:] == [""]
+    assert "same-tracks" in rows[1] and "mics BOOM+LAV1" in rows[1]
+
+
 # ------------------------------------------------------------------- choosing mics
 
 
