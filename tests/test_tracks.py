@@ -553,3 +553,48 @@ def test_manifest_mics_column(tmp_path: Path, poly: Path, capsys) -> None:
     before, _ = sf.read(poly, dtype="int32")
     after, _ = sf.read(out / "lav.wav", dtype="int32")
     np.testing.assert_array_equal(after[:, [0, 2, 3]], before[:, [0, 2, 3]])
+
+
+# ---------------------------------------------------------- room tone on a poly file
+
+
+@pytest.fixture()
+def poly_tone(tmp_path: Path, four_track) -> Path:
+    # The scene's first 1.4 s hold no speech (its 1.5 s noise-only lead-in).
+    return write_take(tmp_path / "tone.wav", four_track[:, : int(1.4 * FS)],
+                      [("iXML", ixml_payload())])
+
+
+def test_learn_mics_matches_room_tone_of_those_tracks(
+    tmp_path: Path, poly: Path, poly_tone: Path, four_track
+) -> None:
+    model, pair_model = tmp_path / "poly.npz", tmp_path / "pair.npz"
+    pair_tone = write_take(tmp_path / "pair_tone.wav", four_track[:2, : int(1.4 * FS)], [])
+    assert main(["learn", str(poly_tone), "-o", str(model), "--mics", "BOOM,LAV1"]) == 0
+    assert main(["learn", str(pair_tone), "-o", str(pair_model)]) == 0
+    pair = write_take(tmp_path / "pair.wav", four_track[:2], [])
+    a, b = tmp_path / "a.wav", tmp_path / "b.wav"
+    assert main(["process", str(poly), "-o", str(a), "--mics", "BOOM,LAV1",
+                 "--noise-model", str(model)]) == 0
+    assert main(["process", str(pair), "-o", str(b), "--noise-model", str(pair_model)]) == 0
+    np.testing.assert_array_equal(sf.read(a, dtype="int32")[0], sf.read(b, dtype="int32")[0])
+    # Without --mics the 4-track model does not fit a 2-microphone array: refused.
+    whole = tmp_path / "whole.npz"
+    assert main(["learn", str(poly_tone), "-o", str(whole)]) == 0
+    assert main(["process", str(poly), "-o", str(tmp_path / "c.wav"), "--mics", "1,2",
+                 "--noise-model", str(whole)]) == 2
+    assert not (tmp_path / "c.wav").exists()
+
+
+def test_batch_room_tone_follows_the_mics(
+    tmp_path: Path, poly: Path, poly_tone: Path, capsys
+) -> None:
+    out = tmp_path / "out"
+    assert main(["batch", str(poly), "--out", str(out), "--jobs", "1", "--json",
+                 "--room-tone", str(poly_tone), "--mics", "BOOM,LAV1"]) == 0
+    assert json.loads(capsys.readouterr().out)["done"] == 1
+    single = tmp_path / "single.wav"
+    assert main(["process", str(poly), "-o", str(single), "--mics", "BOOM,LAV1",
+                 "--noise-region", "0:1.4"]) == 0
+    np.testing.assert_array_equal(sf.read(out / "sc12_tk3.wav", dtype="int32")[0],
+                                  sf.read(single, dtype="int32")[0])

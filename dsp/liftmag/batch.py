@@ -32,7 +32,13 @@ from pathlib import Path
 from typing import Any
 
 from liftmag import __version__, audio_io
-from liftmag.fileproc import learn_noise, load_noise_model, open_source, process_file
+from liftmag.fileproc import (
+    learn_noise,
+    load_noise_model,
+    mic_channels,
+    open_source,
+    process_file,
+)
 from liftmag.settings import Settings, settings_fields
 from liftmag.tracks import SAME_TRACKS, parse_mics
 
@@ -625,16 +631,21 @@ class NoiseResolver:
 
     def __init__(self, state_dir: Path) -> None:
         self.state_dir = state_dir
-        self._cache: dict[tuple[NoiseSource, float], NoiseRef] = {}
+        self._cache: dict[tuple[NoiseSource, float, tuple[str, ...]], NoiseRef] = {}
 
-    def resolve(self, source: NoiseSource, frame_s: float) -> NoiseRef:
-        """Raises ``AudioInputError`` (a ValueError) naming the file if it cannot be used."""
-        cache_key = (source, frame_s)
+    def resolve(
+        self, source: NoiseSource, frame_s: float, mics: tuple[str, ...] = ()
+    ) -> NoiseRef:
+        """Raises ``AudioInputError`` (a ValueError) naming the file if it cannot be used.
+
+        ``mics`` restricts room tone to the takes' microphones (a model file is as learned).
+        """
+        cache_key = (source, frame_s, mics)
         if cache_key not in self._cache:
             if source.kind == "model":
                 self._cache[cache_key] = self._model_file(source.paths)
             else:
-                self._cache[cache_key] = self._learned(source.paths, frame_s)
+                self._cache[cache_key] = self._learned(source.paths, frame_s, mics)
         return self._cache[cache_key]
 
     @staticmethod
@@ -644,17 +655,20 @@ class NoiseResolver:
         load_noise_model(paths[0])  # refuses a file that is not a noise model, clearly
         return NoiseRef(os.path.abspath(paths[0]), sha256_file(paths[0]))
 
-    def _learned(self, paths: tuple[str, ...], frame_s: float) -> NoiseRef:
+    def _learned(self, paths: tuple[str, ...], frame_s: float, mics: tuple[str, ...]) -> NoiseRef:
         source = open_source(paths)
-        digest = hashlib.sha256(
-            json.dumps([__version__, frame_s, [sha256_file(p) for p in paths]]).encode()
-        ).hexdigest()
+        channels = mic_channels(source, mics)
+        identity = [__version__, frame_s, [sha256_file(p) for p in paths]]
+        if channels is not None:  # only then, so models cached before --mics stay valid
+            identity.append(list(channels))
+        digest = hashlib.sha256(json.dumps(identity).encode()).hexdigest()
         target = self.state_dir / f"room-tone-{digest[:20]}.npz"
         if not target.is_file():
             # Learned exactly as `liftmag learn` does (frame length is all it depends on).
             model = learn_noise(
                 source, Settings(frame_s=frame_s), (),
                 description="learned from " + ", ".join(Path(p).name for p in paths),
+                channels=channels,
             )
             self.state_dir.mkdir(parents=True, exist_ok=True)
             audio_io.write_atomically(target, model.to_bytes())
@@ -688,7 +702,9 @@ def build_jobs(
                 plan.overrides, mics, same_tracks
             )
             frame_s = Settings(**{**base_values, **dict(overrides)}).frame_s
-            noise = resolver.resolve(plan.noise, frame_s) if plan.noise else batch_noise
+            noise = (
+                resolver.resolve(plan.noise, frame_s, take_mics) if plan.noise else batch_noise
+            )
             settings = take_settings(base_values, overrides, noise is not None)
         except (ValueError, OSError) as exc:
             refused.append(_refusal(plan, one_line(exc)))

@@ -286,14 +286,7 @@ def take_tracks(
     Raises ``AudioInputError`` with one line for a request that does not fit the take
     (see :func:`liftmag.tracks.choose_mics`), or a reference outside the chosen mics.
     """
-    where = source.path.name if isinstance(source, audio_io.AudioInfo) else "the take"
-    try:
-        found = tracks.source_tracks(source)
-        chosen = (
-            tracks.choose_mics(found, mics, where) if mics else tuple(range(len(found)))
-        )
-    except ValueError as exc:
-        raise audio_io.AudioInputError(str(exc)) from exc
+    found, chosen = _resolve_mics(source, mics)
     if settings.reference_channel >= len(chosen):
         raise audio_io.AudioInputError(
             f"reference channel {settings.reference_channel} does not exist: "
@@ -308,6 +301,31 @@ def take_tracks(
         )
     mode = tracks.SAME_TRACKS if same_tracks else settings.output_mode
     return TakeTracks(found, chosen, settings.reference_channel, mode)
+
+
+def mic_channels(
+    source: audio_io.AudioInfo | audio_io.AudioGroup, mics: Sequence[str]
+) -> tuple[int, ...] | None:
+    """The 0-based channels ``mics`` names in ``source`` (None without ``mics``: all).
+
+    For room tone recorded on the same poly file layout as the takes. Raises
+    ``AudioInputError`` with one line for a request that does not fit.
+    """
+    return _resolve_mics(source, mics)[1] if mics else None
+
+
+def _resolve_mics(
+    source: audio_io.AudioInfo | audio_io.AudioGroup, mics: Sequence[str]
+) -> tuple[tuple[tracks.Track, ...], tuple[int, ...]]:
+    where = source.path.name if isinstance(source, audio_io.AudioInfo) else "the take"
+    try:
+        found = tracks.source_tracks(source)
+        chosen = (
+            tracks.choose_mics(found, mics, where) if mics else tuple(range(len(found)))
+        )
+    except ValueError as exc:
+        raise audio_io.AudioInputError(str(exc)) from exc
+    return found, chosen
 
 
 def _output_chunks(

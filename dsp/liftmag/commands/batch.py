@@ -97,7 +97,7 @@ def run(args: argparse.Namespace) -> int:
         _check_request(args, base_values)
         plans = batch.check_outputs(_plans(args, out_dir))
         resolver = batch.NoiseResolver(out_dir / batch.STATE_DIR_NAME)
-        batch_noise = _batch_noise(args, resolver, base_values)
+        batch_noise = _batch_noise(args, resolver, base_values, mics)
         jobs, refused = batch.build_jobs(
             plans, base_values, batch_noise, resolver, subtype=args.subtype, redo=args.redo,
             mics=mics, same_tracks=same_tracks,
@@ -157,7 +157,9 @@ def _plans(args: argparse.Namespace, out_dir: Path):
     return batch.plan_from_selection(args.inputs, out_dir, args.group_by_suffix)
 
 
-def _batch_noise(args: argparse.Namespace, resolver, base_values: dict[str, Any]):
+def _batch_noise(
+    args: argparse.Namespace, resolver, base_values: dict[str, Any], mics: tuple[str, ...]
+):
     from liftmag.batch import NoiseSource
     from liftmag.settings import Settings
 
@@ -168,7 +170,7 @@ def _batch_noise(args: argparse.Namespace, resolver, base_values: dict[str, Any]
     else:
         return None
     # A bad batch-wide room tone would fail every take: refuse the batch at once.
-    return resolver.resolve(source, Settings(**base_values).frame_s)
+    return resolver.resolve(source, Settings(**base_values).frame_s, mics)
 
 
 class _progress:
