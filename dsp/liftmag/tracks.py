@@ -18,11 +18,15 @@ import math
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from liftmag import riffchunks
 from liftmag.riffchunks import IxmlTrack
+
+if TYPE_CHECKING:
+    from liftmag.audio_io import AudioGroup, AudioInfo
 
 __all__ = [
     "FILE_OUTPUT_MODES",
@@ -31,10 +35,13 @@ __all__ = [
     "Track",
     "TrackChoiceError",
     "choose_mics",
+    "dbfs_text",
+    "describe_run",
     "output_tracks",
     "parse_mics",
     "source_tracks",
     "track_levels_db",
+    "word_length_bits",
 ]
 
 # Output modes that exist only for files (the engine sees the array; the file layer writes
@@ -81,12 +88,12 @@ class Track:
         return f"{self.index} ({self.name})" if self.name else str(self.index)
 
 
-def source_tracks(source) -> tuple[Track, ...]:
+def source_tracks(source: AudioInfo | AudioGroup) -> tuple[Track, ...]:
     """The tracks of an ``AudioInfo`` or ``AudioGroup``, named from each file's ``iXML``.
 
     Raises ``ValueError`` for a WAVE file whose chunks are malformed.
     """
-    members = getattr(source, "members", None) or (source,)
+    members = getattr(source, "members", (source,))
     tracks: list[Track] = []
     for member in members:
         described = _file_tracks(member.path, member.channels)
