@@ -397,6 +397,18 @@ class AtomicAudioWriter:
         self._peak = 0.0
         self.report: WriteReport | None = None
 
+    def use_chunks(self, chunks: Sequence[tuple[str, bytes]]) -> None:
+        """Write these ``(id, payload)`` chunks instead of the ones carried from the input.
+
+        For callers that rewrite the input's metadata to describe the output. Formats
+        other than WAVE cannot hold them: they are then reported as dropped.
+        """
+        found = tuple(chunks)
+        if self.format in _WAVE_FORMATS:
+            self._chunks, self._dropped = found, ()
+        else:
+            self._chunks, self._dropped = (), tuple(chunk_id for chunk_id, _ in found)
+
     def __enter__(self) -> AtomicAudioWriter:
         self._temp = _create_temp(self.path)
         try:
