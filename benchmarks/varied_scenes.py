@@ -242,14 +242,7 @@ def render(spec: SceneSpec) -> scenes.Scene:
     crop = slice(pre + bulk, pre + bulk + n_take + n_tone)
 
     def image(src_index: int, signal: NDArray) -> NDArray:
-        irs = [np.asarray(room.rir[m][src_index]) for m in range(spec.n_mics)]
-        length = max(len(h) for h in irs)
-        irs_arr = np.stack([np.pad(h, (0, length - len(h))) for h in irs])
-        full = scipy.signal.oaconvolve(signal[None, :], irs_arr, axes=-1)
-        out = np.zeros((spec.n_mics, crop.stop - crop.start))
-        part = full[:, crop]
-        out[:, : part.shape[1]] = part
-        return out
+        return rooms.source_images(room, src_index, signal, crop)
 
     dry = np.zeros(n_total + bulk)
     speech_n = n_take - lead_in
