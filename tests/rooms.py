@@ -147,6 +147,23 @@ def build_room(sources_m: list[NDArray], mics_m: NDArray, fs_hz: int) -> pra.Sho
     return room
 
 
+def source_images(room: pra.ShoeBox, src_index: int, signal: NDArray, crop: slice) -> NDArray:
+    """``signal`` played by source ``src_index`` of ``room`` at every microphone, cropped.
+
+    Each microphone's RIR (zero-padded to the longest) is convolved with ``signal``; samples
+    ``crop`` of the result are returned as (M, crop length), zero where the convolution ends.
+    """
+    n_mics = len(room.rir)
+    irs = [np.asarray(room.rir[m][src_index]) for m in range(n_mics)]
+    length = max(len(h) for h in irs)
+    irs_arr = np.stack([np.pad(h, (0, length - len(h))) for h in irs])
+    full = scipy.signal.oaconvolve(signal[None, :], irs_arr, axes=-1)
+    out = np.zeros((n_mics, crop.stop - crop.start))
+    part = full[:, crop]
+    out[:, : part.shape[1]] = part
+    return out
+
+
 def make_room_scene(
     kind: str,
     n_mics: int,
@@ -202,14 +219,7 @@ def make_room_scene(
     crop = slice(pre + bulk, pre + bulk + n_take + n_tone)
 
     def image(src_index: int, signal: NDArray) -> NDArray:
-        irs = [np.asarray(room.rir[m][src_index]) for m in range(n_mics)]
-        length = max(len(h) for h in irs)
-        irs_arr = np.stack([np.pad(h, (0, length - len(h))) for h in irs])
-        full = scipy.signal.oaconvolve(signal[None, :], irs_arr, axes=-1)
-        out = np.zeros((n_mics, crop.stop - crop.start))
-        part = full[:, crop]
-        out[:, : part.shape[1]] = part
-        return out
+        return source_images(room, src_index, signal, crop)
 
     n_streams = 2 + len(names) + len(spec["added"])
     seeds = np.random.SeedSequence([seed, KINDS.index(kind)]).spawn(n_streams)
