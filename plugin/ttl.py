@@ -33,7 +33,10 @@ PLUGINS: tuple[tuple[str, int, str], ...] = (
     ("urn:liftmag:dialogue-2ch", 2, "dialogue-2ch"),
     ("urn:liftmag:dialogue-4ch", 4, "dialogue-4ch"),
 )
-MINOR_VERSION = 1
+# LV2 core (lv2:minorVersion): the minor version MUST rise with backwards-compatible
+# additions, and an odd minor version marks a development version. 2: port groups, and 0
+# standing for the default where 0 was useless, with the same ports at the same indices.
+MINOR_VERSION = 2
 MICRO_VERSION = 0
 STATE_KEY_URI = "urn:liftmag:state:noise-model"
 
