@@ -334,7 +334,8 @@ def _latency_port_ttl(index: int) -> str:
         "lv2:portProperty lv2:reportsLatency , lv2:integer",
         "units:unit units:frame",
         "lv2:minimum 0",
-        "lv2:maximum 1000000",
+        # 2^24: a float32 port value holds every whole number up to this exactly.
+        "lv2:maximum 16777216",
     ]) + "\n\t]")
 
 
