@@ -29,6 +29,9 @@ from pathlib import Path
 from typing import Any
 
 TEST_FAULT_ENV = "LIFTMAG_LV2_TEST_FAULT"
+# Start of the log line that lists control values not taken as they are (`liftmag plugin
+# info` shows the latest such lines).
+CONTROLS_NOTE = "control values replaced"
 PORTS_FILE = Path(__file__).resolve().parent / "ports.json"
 
 _ffi: Any = None
@@ -58,32 +61,46 @@ def _fault(name: str, fault: str) -> None:
 
 # ------------------------------------------------------------------ controls -> settings
 
-def _port_value(port: dict[str, Any], value: float) -> Any:
-    """The settings value for one port value (out-of-range values are clamped)."""
+_KEEP = object()  # _port_value's answer for "leave the setting at its default"
+
+
+def _port_value(port: dict[str, Any], value: float) -> tuple[Any, str]:
+    """The settings value for one port value, and a note when the value was not taken as is.
+
+    Out-of-range values are clamped. On ports where 0 stands for "not set" or "the default",
+    0 and values outside the usable range that lie nearer 0 than the range mean that.
+    """
     kind = port["kind"]
+    symbol = port["symbol"]
     if kind == "enumeration":
         index = round(value)
         if index not in port["offered"]:
-            raise ValueError(f"{port['symbol']}: {value:g} is not one of the offered values")
-        return port["choices"][index]
+            raise ValueError(f"{symbol} {value:g} is not one of the offered values")
+        return port["choices"][index], ""
     if kind == "toggle":
-        return value >= 0.5
+        return value >= 0.5, ""
     lo, hi = port["valid_minimum"], port["valid_maximum"]
     clamped = min(max(value, lo), hi)
-    unset = port["unset"]
-    # Values outside the usable range that lie nearer the "not set" value mean "not set".
-    if unset is not None and abs(value - unset) <= abs(value - clamped):
-        return None
-    return float(clamped)
+    zero = port.get("zero", "")
+    if zero and (value == 0.0 or abs(value) <= abs(value - clamped)):
+        if zero == "unset":
+            return None, "" if value == 0.0 else f"{symbol} {value:g} read as 0 (not set)"
+        note = f"{symbol} {value:g} read as the default {port['default']:g}"
+        return _KEEP, note + (" (0 means the default)" if value == 0.0 else "")
+    if clamped != value:
+        return float(clamped), f"{symbol} {value:g} clamped to {clamped:g}"
+    return float(value), ""
 
 
 def settings_from_controls(values: Sequence[float | None], controls: Sequence[dict[str, Any]],
                            base: Any = None) -> tuple[Any, list[str]]:
-    """Settings for these port values, and the problems met (empty when all were usable).
+    """Settings for these port values, and a note for every value not taken as it is.
 
     Unconnected ports (None or NaN) keep the default. Port combinations the settings refuse
-    (a talker bearing without a microphone spacing) drop the optional values first, then
-    fall back to the defaults, so the host always gets a working engine.
+    (a talker bearing without a microphone spacing) lose as few values as possible: first
+    one optional value (the bearing before the spacing, in port order), then all of them,
+    and only then are the defaults used, so the host always gets a working engine and a
+    bearing that cannot be used never costs the other settings.
     """
     from liftmag.settings import Settings
 
@@ -91,26 +108,33 @@ def settings_from_controls(values: Sequence[float | None], controls: Sequence[di
     if len(values) != len(controls):
         raise ValueError(f"{len(values)} control values for {len(controls)} ports: the "
                          "bundle is inconsistent; rebuild it (make plugin)")
-    problems: list[str] = []
+    notes: list[str] = []
     changes: dict[str, Any] = {}
     for value, port in zip(values, controls, strict=True):
         if value is None or not math.isfinite(value):
             continue
         try:
-            changes[port["field"]] = _port_value(port, float(value))
+            setting, note = _port_value(port, float(value))
         except ValueError as exc:
-            problems.append(str(exc))
-    try:
-        return base.replace(**changes), problems
-    except ValueError as exc:
-        problems.append(str(exc))
-    optional = [p["field"] for p in controls if p.get("unset") is not None]
-    trimmed = {k: v for k, v in changes.items() if k not in optional}
-    try:
-        return base.replace(**trimmed), [*problems, "optional settings ignored"]
-    except ValueError as exc:
-        problems.append(str(exc))
-    return base, [*problems, "defaults used"]
+            notes.append(f"{exc}; the default is used")
+            continue
+        if note:
+            notes.append(note)
+        if setting is not _KEEP:
+            changes[port["field"]] = setting
+    optional = [p["field"] for p in controls
+                if p.get("zero") == "unset" and changes.get(p["field"]) is not None]
+    trials = [()] + [(name,) for name in optional] + [tuple(optional)]
+    for dropped in dict.fromkeys(trials):
+        try:
+            settings = base.replace(**{k: v for k, v in changes.items() if k not in dropped})
+        except ValueError as exc:
+            reason = str(exc)
+            continue
+        if dropped:
+            notes.append(f"{', '.join(dropped)} ignored ({reason})")
+        return settings, notes
+    return base, [*notes, f"defaults used ({reason})"]
 
 
 # ------------------------------------------------------------------ engine access
@@ -154,10 +178,10 @@ class _Instance:
 
     def apply_controls(self, values: tuple[float | None, ...]) -> None:
         self.seen = values
-        settings, problems = settings_from_controls(values, self.controls)
-        if problems:
+        settings, notes = settings_from_controls(values, self.controls)
+        if notes:
             self.log_once("controls:" + repr(values),
-                          "control values not usable (" + "; ".join(problems) + ")")
+                          f"{CONTROLS_NOTE}: " + "; ".join(notes))
         if settings != self.settings:
             with self.lock:
                 self.processor.update_settings(settings)

@@ -43,8 +43,11 @@ static int liftmag_py_save(int64_t handle, void *sink);
 static int liftmag_py_restore(int64_t handle, const char *data, size_t size);
 
 #define LIFTMAG_MAX_CHANNELS 16
-/* Engine latencies beyond this (samples) are refused as implausible (> 5 s at 192 kHz). */
-#define LIFTMAG_MAX_ENGINE_LATENCY 1000000
+/* Engine latencies beyond this (samples) are refused as implausible (83 s at 192 kHz). The
+   bound leaves room for a look-ahead of several seconds at any rate, and keeps the reported
+   latency (this plus the block) a whole number that the float latency port holds exactly
+   (float32 holds every integer up to 2^24 = 16777216). */
+#define LIFTMAG_MAX_ENGINE_LATENCY 16000000
 
 /* ---------------------------------------------------------------- logging */
 

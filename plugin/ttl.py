@@ -33,7 +33,10 @@ PLUGINS: tuple[tuple[str, int, str], ...] = (
     ("urn:liftmag:dialogue-2ch", 2, "dialogue-2ch"),
     ("urn:liftmag:dialogue-4ch", 4, "dialogue-4ch"),
 )
-MINOR_VERSION = 1
+# LV2 core (lv2:minorVersion): the minor version MUST rise with backwards-compatible
+# additions, and an odd minor version marks a development version. 2: port groups, and 0
+# standing for the default where 0 was useless, with the same ports at the same indices.
+MINOR_VERSION = 2
 MICRO_VERSION = 0
 STATE_KEY_URI = "urn:liftmag:state:noise-model"
 
@@ -65,8 +68,11 @@ class ControlPort:
     choices: tuple[str, ...] = ()
     offered: tuple[int, ...] = ()  # indices into choices that are usable from the plugin
     choice_help: tuple[str, ...] = ()
-    unset: float | None = None  # port value meaning "not set" (None) for optional fields
-    valid_minimum: float | None = None  # range of set values (the port range adds unset)
+    # What port value 0 stands for: "unset" (None, an optional field left out) or "default"
+    # (the setting's default); "" where 0 is an ordinary value. Hosts that start every
+    # control at 0 then get the default processing.
+    zero: str = ""
+    valid_minimum: float | None = None  # range of real values (the port range adds 0)
     valid_maximum: float | None = None
 
     def to_json(self) -> dict[str, Any]:
@@ -83,7 +89,7 @@ def _choice_usable(name: str, choice: str) -> bool:
     optional: dict[str, Any] = {}
     for f in settings_fields():
         meta = f.metadata
-        if meta.get("lv2_port") and meta.get("lv2_unset") is not None:
+        if meta.get("lv2_port") and meta.get("lv2_zero") == "unset":
             optional[f.name] = 0.5 * (float(meta["minimum"]) + float(meta["maximum"]))
     trials.append(optional)
     for extra in trials:
@@ -127,20 +133,20 @@ def control_ports() -> tuple[ControlPort, ...]:
                 default=float(default), minimum=0.0, maximum=1.0,
             ))
         else:
-            unset = meta.get("lv2_unset")
+            zero = meta.get("lv2_zero", "")
             lo, hi = float(meta["minimum"]), float(meta["maximum"])
-            if default is None and unset is None:
-                raise ValueError(f"settings field {f.name} is optional but has no lv2_unset")
+            if zero not in ("", "unset", "default"):
+                raise ValueError(f"settings field {f.name}: lv2_zero must be unset or default")
+            if (default is None) != (zero == "unset"):
+                raise ValueError(f"settings field {f.name}: optional fields, and only they, "
+                                 "need lv2_zero='unset'")
             if meta.get("unit") and meta["unit"] not in LV2_UNITS:
                 raise ValueError(f"settings unit {meta['unit']!r} has no LV2 unit mapping")
-            port_default = float(unset) if default is None else float(default)
             ports.append(ControlPort(
                 symbol=f.name, field=f.name, label=label, kind="number", help=help_text,
-                default=port_default,
-                minimum=min(lo, float(unset)) if unset is not None else lo,
-                maximum=max(hi, float(unset)) if unset is not None else hi,
-                unit=meta.get("unit", ""), unset=None if unset is None else float(unset),
-                valid_minimum=lo, valid_maximum=hi,
+                default=0.0 if default is None else float(default),
+                minimum=min(lo, 0.0) if zero else lo, maximum=max(hi, 0.0) if zero else hi,
+                unit=meta.get("unit", ""), zero=zero, valid_minimum=lo, valid_maximum=hi,
             ))
     return tuple(ports)
 
@@ -193,12 +199,24 @@ def port_comment(port: ControlPort) -> str:
     if port.kind == "toggle":
         return f"{head}. 0 = off, 1 = on; default {int(port.default)}."
     text = f"{head}. Range {_range_words(port)}"
-    if port.unset is not None:
-        text += f"; {_number(port.unset)} means not set (the default)"
+    unit = UNIT_WORDS.get(port.unit, port.unit)
+    if port.zero == "unset":
+        text += "; 0 means not set (the default)"
+    elif port.zero == "default":
+        text += f"; 0 means the default, {_number(port.default)}" + (f" {unit}" if unit else "")
     else:
-        unit = UNIT_WORDS.get(port.unit, port.unit)
         text += f"; default {_number(port.default)}" + (f" {unit}" if unit else "")
+    if port.zero and port.valid_minimum is not None and port.valid_minimum <= 0.0:
+        text += "; for 0 itself give a value just above it"
     return text + "."
+
+
+def zero_label(port: ControlPort) -> str:
+    """The scale-point label of port value 0 (hosts with generic controls show it)."""
+    if port.zero == "unset":
+        return "not set"
+    unit = f" {port.unit}" if port.unit else ""
+    return f"default ({_number(port.default)}{unit})"
 
 
 def _control_port_ttl(index: int, port: ControlPort) -> str:
@@ -223,14 +241,59 @@ def _control_port_ttl(index: int, port: ControlPort) -> str:
     else:
         if port.unit:
             lines.append(f"units:unit {LV2_UNITS[port.unit]}")
-        if port.unset is not None:
+        if port.zero:
+            # A labelled point, so hosts with generic controls show what 0 does.
             lines.append(
-                f'lv2:scalePoint [ rdfs:label "not set" ; rdf:value {_number(port.unset)} ]'
+                f"lv2:scalePoint [ rdfs:label {_literal(zero_label(port))} ; rdf:value 0 ]"
             )
     return "[\n\t\t" + " ;\n\t\t".join(lines) + "\n\t]"
 
 
-def _audio_port_ttl(index: int, direction: str, channel: int, n_channels: int) -> str:
+def group_uri(uri: str, direction: str) -> str:
+    """The port group of a plugin's inputs (``in``) or outputs (``out``)."""
+    return f"{uri}#{direction}"
+
+
+def channel_designations(n_channels: int) -> tuple[str, ...]:
+    """The lv2:designation of each channel of a group, as Turtle terms.
+
+    Two channels form the LV2 stereo group (port groups extension: ``pg:StereoGroup``, left
+    then right), which hosts such as GStreamer need to treat the pair as one stream. Other
+    counts are a ``pg:DiscreteGroup`` whose channels are our own ``lv2:Channel`` resources,
+    one per microphone in array order: the surround layouts of the extension (4.0 is left,
+    centre, right, rear centre) would let a host reorder an array's channels by position.
+    """
+    if n_channels == 2:
+        return ("pg:left", "pg:right")
+    return tuple(f"<{MICROPHONE_CHANNEL_URI}{c + 1}>" for c in range(n_channels))
+
+
+MICROPHONE_CHANNEL_URI = "urn:liftmag:channel:microphone-"
+
+
+def _groups_ttl(uri: str, n_channels: int) -> str:
+    kind = "pg:StereoGroup" if n_channels == 2 else "pg:DiscreteGroup"
+    designations = channel_designations(n_channels)
+    blocks = []
+    for direction, role, name in (("in", "pg:InputGroup", "Microphones"),
+                                  ("out", "pg:OutputGroup", "Outputs")):
+        lines = [f"a {kind} , {role}", f'lv2:symbol "{direction}"',
+                 f"lv2:name {_literal(name)}"]
+        if direction == "out":
+            lines.append(f"pg:source <{group_uri(uri, 'in')}>")
+        if n_channels != 2:  # pg:StereoGroup declares its own elements
+            lines.append("pg:element " + " ,\n\t\t".join(
+                f"[ lv2:index {c} ; lv2:designation {d} ]" for c, d in enumerate(designations)
+            ))
+        blocks.append(f"<{group_uri(uri, direction)}>\n\t" + " ;\n\t".join(lines) + " .")
+    if n_channels != 2:
+        blocks += [f"{d}\n\ta lv2:Channel ;\n\trdfs:label {_literal(f'microphone {c + 1}')} ."
+                   for c, d in enumerate(designations)]
+    return "\n\n".join(blocks)
+
+
+def _audio_port_ttl(uri: str, index: int, direction: str, channel: int,
+                    n_channels: int) -> str:
     if direction == "in":
         role = " (the reference channel, whose sound is cleaned)" if channel == 0 else ""
         comment = f"Microphone {channel + 1} of {n_channels}{role}."
@@ -246,6 +309,8 @@ def _audio_port_ttl(index: int, direction: str, channel: int, n_channels: int) -
         f'lv2:symbol "{direction}_{channel + 1}"',
         f"lv2:name {_literal(name)}",
         f"rdfs:comment {_literal(comment)}",
+        f"pg:group <{group_uri(uri, direction)}>",
+        f"lv2:designation {channel_designations(n_channels)[channel]}",
     ]) + "\n\t]")
 
 
@@ -269,7 +334,8 @@ def _latency_port_ttl(index: int) -> str:
         "lv2:portProperty lv2:reportsLatency , lv2:integer",
         "units:unit units:frame",
         "lv2:minimum 0",
-        "lv2:maximum 1000000",
+        # 2^24: a float32 port value holds every whole number up to this exactly.
+        "lv2:maximum 16777216",
     ]) + "\n\t]")
 
 
@@ -283,20 +349,28 @@ PLUGIN_COMMENT = (
 )
 
 
+def plugin_title(n_channels: int) -> str:
+    """The plugin's doap:name (hosts list it; GStreamer shows it beside the element name)."""
+    return f"liftmag dialogue cleaner, {n_channels} microphones"
+
+
 def plugin_ttl(uri: str, n_channels: int, stem: str,
                ports: tuple[ControlPort, ...] | None = None) -> str:
     """The Turtle description of one plugin."""
     ports = control_ports() if ports is None else ports
-    blocks = [_audio_port_ttl(c, "in", c, n_channels) for c in range(n_channels)]
-    blocks += [_audio_port_ttl(n_channels + c, "out", c, n_channels) for c in range(n_channels)]
+    blocks = [_audio_port_ttl(uri, c, "in", c, n_channels) for c in range(n_channels)]
+    blocks += [_audio_port_ttl(uri, n_channels + c, "out", c, n_channels)
+               for c in range(n_channels)]
     blocks += [_control_port_ttl(2 * n_channels + k, p) for k, p in enumerate(ports)]
     blocks.append(_latency_port_ttl(2 * n_channels + len(ports)))
     template = Template((TEMPLATES / "plugin.ttl.in").read_text())
     return template.substitute(
-        name=stem, uri=uri, title=f"liftmag dialogue cleaner, {n_channels} microphones",
+        name=stem, uri=uri, title=plugin_title(n_channels),
         minor_version=MINOR_VERSION, micro_version=MICRO_VERSION,
         comment=_literal(PLUGIN_COMMENT.format(n=n_channels)),
         ports=" ,\n\t".join(blocks),
+        main_input=group_uri(uri, "in"), main_output=group_uri(uri, "out"),
+        groups=_groups_ttl(uri, n_channels),
     )
 
 

@@ -73,6 +73,20 @@ def test_lv2apply_matches_process_array(bundle: Path, take, tmp_path: Path) -> N
     assert after > before, (before, after)
 
 
+def test_lv2apply_with_every_control_at_zero_gives_the_default(bundle: Path, take,
+                                                               tmp_path: Path) -> None:
+    # What a host that starts every control port at 0 gives (ecasound does).
+    x, fs, _ = take
+    x = x[:, : 3 * fs]
+    zeros = {p.symbol: 0.0 for p in support.ttl_module().control_ports()}
+    env = support.lv2_env(bundle.parent, tmp_path / "state")
+    y = support.lv2apply(support.URI_2CH, x, fs, env, zeros, workdir=tmp_path)
+    latency = _latency(Settings(), fs, 2, bundle)
+    expected = process_array(x, fs, Settings())[0]
+    support.assert_f32_close(y[0, latency:], expected[: x.shape[1] - latency], "all zero")
+    assert "reduction_limit_db 0 read as the default" in support.plugin_log(tmp_path / "state")
+
+
 def test_lv2apply_4ch_keep_image(bundle: Path, tmp_path: Path) -> None:
     fs = 16000
     x = _noise(4, 2 * fs, seed=5)

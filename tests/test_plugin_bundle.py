@@ -55,6 +55,18 @@ def test_lv2info_shows_ports_ranges_and_latency(uri: str, channels: int,
     for c in range(channels):
         assert f"in_{c + 1}" in indices and f"out_{c + 1}" in indices
     ports = dict(re.findall(r"Port (\d+):(.*?)(?=\n\s*Port \d+:|\Z)", text, flags=re.S))
+    # lilv reads the port groups (LV2 port groups extension) and each channel's designation;
+    # the stereo group's are the extension's own left and right.
+    for direction in ("in", "out"):
+        for c in range(channels):
+            body = ports[str(indices[f"{direction}_{c + 1}"])]
+            assert f"Group:       {uri}#{direction}" in body, body
+            designation = re.search(r"Designation: (\S+)", body).group(1)
+            if channels == 2:
+                side = ("left", "right")[c]
+                assert designation == f"http://lv2plug.in/ns/ext/port-groups#{side}"
+            else:
+                assert designation.endswith(f"microphone-{c + 1}")
     for f in settings_fields():
         meta = f.metadata
         if not meta.get("lv2_port"):
@@ -67,8 +79,9 @@ def test_lv2info_shows_ports_ranges_and_latency(uri: str, channels: int,
             assert (lo, hi) == (0.0, len(meta["choices"]) - 1)
             assert "enumeration" in body
         elif meta.get("minimum") is not None:
-            unset = meta.get("lv2_unset")
-            expected_lo = meta["minimum"] if unset is None else min(meta["minimum"], unset)
+            # Ports where 0 stands for "not set" or the default reach down to 0.
+            zero = meta.get("lv2_zero")
+            expected_lo = min(meta["minimum"], 0.0) if zero else meta["minimum"]
             assert lo == pytest.approx(expected_lo) and hi == pytest.approx(meta["maximum"])
         else:  # a switch
             assert (lo, hi) == (0.0, 1.0) and "toggled" in body
@@ -82,7 +95,8 @@ def test_every_port_is_documented(bundle: Path) -> None:
         text = (bundle / f"{stem}.ttl").read_text()
         # One rdfs:comment per port, plus the plugin's own.
         assert text.count("rdfs:comment") == 2 * n + len(ttl.control_ports()) + 1 + 1
-        assert text.count("lv2:symbol") == 2 * n + len(ttl.control_ports()) + 1
+        # One lv2:symbol per port and per port group (input and output).
+        assert text.count("lv2:symbol") == 2 * n + len(ttl.control_ports()) + 1 + 2
         assert "units:unit units:db" in text and "units:unit units:frame" in text
 
 

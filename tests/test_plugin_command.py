@@ -65,3 +65,22 @@ def test_info_reports_a_missing_interpreter(tmp_path: Path, monkeypatch: pytest.
     assert report["log_file"] == str(tmp_path / "state" / "liftmag" / "lv2-plugin.log")
     assert main(["plugin", "info"]) == 0
     assert "MISSING" in capsys.readouterr().out
+
+
+def test_info_shows_the_latest_replaced_control_values(tmp_path: Path,
+                                                       monkeypatch: pytest.MonkeyPatch,
+                                                       capsys: pytest.CaptureFixture) -> None:
+    monkeypatch.setenv("HOME", str(tmp_path / "home"))
+    monkeypatch.setenv("LV2_PATH", str(tmp_path / "lv2"))
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path / "state"))
+    log = tmp_path / "state" / "liftmag" / "lv2-plugin.log"
+    log.parent.mkdir(parents=True)
+    lines = [f"2026-01-01T00:00:0{k}Z [1] instance {k}: control values replaced: "
+             f"reduction_limit_db 0 read as the default 18" for k in range(7)]
+    log.write_text("\n".join([*lines[:3], "2026-01-01T00:00:09Z [1] unrelated", *lines[3:]])
+                   + "\n")
+    assert main(["plugin", "info", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["control_notes"] == lines[-5:]
+    assert main(["plugin", "info"]) == 0
+    out = capsys.readouterr().out
+    assert lines[-1] in out and lines[1] not in out and "unrelated" not in out

@@ -55,9 +55,8 @@ def test_comments_give_unit_range_and_unset_value() -> None:
         comment = ttl.port_comment(port)
         if port.unit:
             assert ttl.UNIT_WORDS[port.unit] in comment
-        if port.unset is not None:
-            assert f"{ttl._number(port.unset)} means not set" in comment
-            assert port.minimum <= port.unset <= port.maximum
+        if port.zero:
+            assert "0 means " in comment and port.minimum <= 0.0 <= port.maximum
         assert port.minimum <= port.default <= port.maximum
 
 
@@ -102,14 +101,70 @@ def test_out_of_range_values_are_clamped_or_unset() -> None:
 
 
 def test_refused_combinations_fall_back_and_say_so() -> None:
-    # A bearing without a spacing is refused by Settings; the plugin drops the bearing.
-    values, controls = _values(target_deg=45.0, reduction_limit_db=6.0)
-    settings, problems = bridge.settings_from_controls(values, controls)
-    assert settings.target_deg is None and settings.reduction_limit_db == 6.0
-    assert problems
+    # A bearing without a spacing is refused by Settings; the plugin drops the bearing only.
+    values, controls = _values(target_deg=45.0, reduction_limit_db=6.0, estimator=7,
+                               output_mode=1)
+    settings, notes = bridge.settings_from_controls(values, controls)
+    assert settings == Settings(reduction_limit_db=6.0, estimator="mvdr",
+                                output_mode="keep-image")
+    assert notes == ["target_deg ignored (a talker bearing needs the microphone spacing "
+                     "as well)"]
     values, controls = _values(estimator=4)  # lifted-nulls: not offered
     settings, problems = bridge.settings_from_controls(values, controls)
     assert settings.estimator == Settings().estimator and problems
+
+
+def test_every_control_at_zero_gives_the_default_settings() -> None:
+    # Some hosts (ecasound) start every control port at 0 when given no values.
+    controls = _controls()
+    settings, notes = bridge.settings_from_controls([0.0] * len(controls), controls)
+    assert settings == Settings()
+    # Only the value read as something else than itself is reported; "not set" is a 0 that
+    # means what it says.
+    assert notes == ["reduction_limit_db 0 read as the default 18 (0 means the default)"]
+
+
+def test_zero_stands_for_the_default_only_where_zero_is_useless() -> None:
+    by_field = {p.field: p for p in ttl.control_ports()}
+    # A 0 dB reduction limit removes nothing, and a bearing needs a spacing: both stand for
+    # the default. The choices' first entries are the defaults already, and bypass 0 is off.
+    assert by_field["reduction_limit_db"].zero == "default"
+    assert by_field["target_deg"].zero == by_field["mic_spacing_m"].zero == "unset"
+    for port in ttl.control_ports():
+        if port.kind in ("enumeration", "toggle"):
+            assert port.zero == "" and port.default == 0.0
+    text = ttl.plugin_ttl(support.URI_2CH, 2, "dialogue-2ch")
+    assert 'lv2:scalePoint [ rdfs:label "default (18 dB)" ; rdf:value 0 ]' in text
+    assert text.count('lv2:scalePoint [ rdfs:label "not set" ; rdf:value 0 ]') == 2
+
+
+def test_a_bearing_with_a_spacing_is_kept_and_odd_values_are_noted() -> None:
+    values, controls = _values(target_deg=30.0, mic_spacing_m=0.1)
+    assert bridge.settings_from_controls(values, controls) == (
+        Settings(target_deg=30.0, mic_spacing_m=0.1), [])
+    values, controls = _values(reduction_limit_db=-3.0, mic_spacing_m=5.0)
+    settings, notes = bridge.settings_from_controls(values, controls)
+    assert settings == Settings(mic_spacing_m=2.0)
+    assert notes == ["reduction_limit_db -3 read as the default 18",
+                     "mic_spacing_m 5 clamped to 2"]
+
+
+def test_plugin_info_finds_the_bridges_log_lines() -> None:
+    from liftmag.commands import plugin
+
+    assert plugin.CONTROLS_NOTE == bridge.CONTROLS_NOTE
+
+
+def test_port_groups_follow_the_channel_count() -> None:
+    # LV2 port groups: a stereo group has left and right; ours for 4 microphones is a
+    # discrete group whose channels keep the array order.
+    assert ttl.channel_designations(2) == ("pg:left", "pg:right")
+    four = ttl.channel_designations(4)
+    assert len(set(four)) == 4 and all("microphone-" in d for d in four)
+    text = ttl.plugin_ttl(support.URI_4CH, 4, "dialogue-4ch")
+    assert text.count(f"pg:group <{support.URI_4CH}#in>") == 4
+    assert text.count(f"pg:group <{support.URI_4CH}#out>") == 4
+    assert f"pg:mainInput <{support.URI_4CH}#in>" in text
 
 
 def test_wrong_number_of_values_is_an_error() -> None:

@@ -61,7 +61,7 @@ def _meta(
     choices: tuple[str, ...] | None = None,
     lv2_port: bool = False,
     lv2_label: str = "",
-    lv2_unset: float | None = None,
+    lv2_zero: str = "",
 ) -> dict[str, Any]:
     return {
         "help": help_text,
@@ -71,7 +71,9 @@ def _meta(
         "choices": choices,
         "lv2_port": lv2_port,
         "lv2_label": lv2_label,
-        "lv2_unset": lv2_unset,  # port value that means "not set" (None) for optional fields
+        # What port value 0 stands for where 0 itself would be useless or invalid: "unset"
+        # (None, for optional fields) or "default". Some hosts start every control at 0.
+        "lv2_zero": lv2_zero,
     }
 
 
@@ -90,6 +92,7 @@ class Settings:
         metadata=_meta(
             "deepest reduction applied to any bin; lower keeps more room sound",
             unit="dB", minimum=0.0, maximum=40.0, lv2_port=True, lv2_label="Reduction limit",
+            lv2_zero="default",
         ),
     )
     target_deg: float | None = field(
@@ -97,7 +100,7 @@ class Settings:
         metadata=_meta(
             "talker bearing (90 = broadside, needs --mic-spacing-m); unset: found from the "
             "recording", unit="deg", minimum=0.0, maximum=180.0, lv2_port=True,
-            lv2_label="Talker bearing", lv2_unset=-1.0,
+            lv2_label="Talker bearing", lv2_zero="unset",
         ),
     )
     mic_spacing_m: float | None = field(
@@ -105,7 +108,7 @@ class Settings:
         metadata=_meta(
             "spacing of a uniform linear array; unset: geometry not used", unit="m",
             minimum=0.005, maximum=2.0, lv2_port=True, lv2_label="Microphone spacing",
-            lv2_unset=0.0,
+            lv2_zero="unset",
         ),
     )
     null_deg: tuple[float, ...] = field(

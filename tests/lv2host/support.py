@@ -254,3 +254,114 @@ def assert_f32_close(actual: np.ndarray, expected: np.ndarray, what: str) -> Non
     peak = max(float(np.max(np.abs(expected))), 1e-6)
     err = float(np.max(np.abs(actual.astype(np.float64) - expected)))
     assert err <= F32_REL * peak, f"{what}: max error {err:.3g} for peak {peak:.3g}"
+
+
+# ------------------------------------------------------------------ other LV2 hosts
+
+LIFTMAG_CLI = Path(sys.executable).parent / "liftmag"
+
+
+def reported_latency(bundle_dir: Path, uri: str, rate: int, env: dict[str, str],
+                     workdir: Path) -> int:
+    """The latency the plugin reports on its latency port (read by our test host).
+
+    Hosts that do not compensate it (ecasound, GStreamer's bridge) leave the output this
+    many frames late; it is read at run time, never assumed, because it follows the engine.
+    """
+    channels = 4 if uri == URI_4CH else 2
+    host = compile_host(_scratch)
+    job = Job(uri, rate, np.zeros((channels, block_frames(bundle_dir)), np.float32), {},
+              blocks="f256")
+    result = run_host(host, bundle_dir, [job], workdir, env, tag="latency")
+    return result.latency[(0, 0)]
+
+
+def cli_process(x: np.ndarray, fs: int, workdir: Path, *options: str) -> np.ndarray:
+    """``liftmag process`` on ``x`` (channels, n) as a 32-bit float WAV: (channels, n)."""
+    import soundfile as sf
+
+    src, dst = workdir / "cli-in.wav", workdir / "cli-out.wav"
+    sf.write(src, np.asarray(x, dtype=np.float32).T, fs, subtype="FLOAT")
+    proc = subprocess.run([str(LIFTMAG_CLI), "process", str(src), "-o", str(dst), *options],
+                          capture_output=True, text=True, timeout=600)
+    if proc.returncode != 0:
+        raise AssertionError(f"liftmag process failed ({proc.returncode}): {proc.stderr}")
+    y, fs_out = sf.read(dst, dtype="float64", always_2d=True)
+    assert fs_out == fs
+    return y.T
+
+
+def write_float_wav(path: Path, x: np.ndarray, fs: int) -> None:
+    import soundfile as sf
+
+    sf.write(path, np.asarray(x, dtype=np.float32).T, fs, subtype="FLOAT")
+
+
+def read_wav(path: Path, fs: int) -> np.ndarray:
+    """A host's output as (channels, n) float32, after checking its rate and subtype."""
+    import soundfile as sf
+
+    info = sf.info(str(path))
+    # A host that wrote integer samples would add its own rounding to the comparison.
+    assert info.subtype == "FLOAT", (path, info.subtype)
+    y, fs_out = sf.read(path, dtype="float32", always_2d=True)
+    assert fs_out == fs
+    return y.T
+
+
+def run_ecasound(uri: str, src: Path, dst: Path, fs: int, channels: int,
+                 env: dict[str, str]) -> str:
+    """``ecasound -i SRC -o DST -elv2:URI`` with no control values; returns its output.
+
+    ``dst`` must not exist: ecasound opens an existing WAV file in its own format.
+    """
+    assert not dst.exists()
+    proc = subprocess.run(
+        ["ecasound", "-q", "-i", str(src), f"-f:f32_le,{channels},{fs}", "-o", str(dst),
+         f"-elv2:{uri}"],
+        env=env, capture_output=True, text=True, timeout=600, stdin=subprocess.DEVNULL)
+    if proc.returncode != 0 or not dst.exists():
+        raise AssertionError(f"ecasound failed ({proc.returncode}): {proc.stdout}{proc.stderr}")
+    return proc.stdout + proc.stderr
+
+
+def gst_env(lv2_path: Path, state_home: Path, registry: Path) -> dict[str, str]:
+    """An LV2 environment plus a private GStreamer registry, so the lv2 bridge scans our
+    bundle afresh and nothing is cached outside the test's folder."""
+    env = lv2_env(lv2_path, state_home, GST_REGISTRY=str(registry))
+    env.pop("GST_PLUGIN_PATH", None)
+    return env
+
+
+def gst_element(uri: str, env: dict[str, str]) -> str:
+    """The element name GStreamer's lv2 bridge gives a plugin, from ``gst-inspect-1.0 lv2``
+    (it lists ``NAME: doap:name`` for each plugin it could wrap)."""
+    ttl = ttl_module()
+    channels = 4 if uri == URI_4CH else 2
+    title = ttl.plugin_title(channels)
+    out = subprocess.run(["gst-inspect-1.0", "lv2"], env=env, capture_output=True, text=True,
+                         timeout=300).stdout
+    found = re.findall(rf"^\s*(\S+):\s*{re.escape(title)}\s*$", out, flags=re.M)
+    if not found:
+        raise AssertionError(f"GStreamer's lv2 bridge did not wrap {uri}:\n{out}")
+    return found[0]
+
+
+def run_gstreamer(element: str, src: Path, dst: Path, env: dict[str, str]) -> str:
+    proc = subprocess.run(
+        ["gst-launch-1.0", "-q", "filesrc", f"location={src}", "!", "wavparse", "!",
+         "audioconvert", "!", element, "!", "wavenc", "!", "filesink", f"location={dst}"],
+        env=env, capture_output=True, text=True, timeout=600, stdin=subprocess.DEVNULL)
+    if proc.returncode != 0 or not dst.exists():
+        raise AssertionError(f"gst-launch-1.0 failed ({proc.returncode}): "
+                             f"{proc.stdout}{proc.stderr}")
+    return proc.stdout + proc.stderr
+
+
+def run_lv2file(uri: str, src: Path, dst: Path, env: dict[str, str]) -> str:
+    proc = subprocess.run(["lv2file", "-i", str(src), "-o", str(dst), uri], env=env,
+                          capture_output=True, text=True, timeout=600,
+                          stdin=subprocess.DEVNULL)
+    if proc.returncode != 0 or not dst.exists():
+        raise AssertionError(f"lv2file failed ({proc.returncode}): {proc.stdout}{proc.stderr}")
+    return proc.stdout + proc.stderr

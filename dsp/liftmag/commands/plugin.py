@@ -22,6 +22,10 @@ HELP = (
 
 BUNDLE_NAME = "liftmag.lv2"
 BUILD_INFO = "build-info.json"
+# Start of the plugin's log lines that list control values it did not take as they were
+# (plugin/liftmag_lv2_bridge.py writes them; a test checks that the two agree).
+CONTROLS_NOTE = "control values replaced"
+RECENT_NOTES = 5
 # lilv's default search path on Linux, used when LV2_PATH is unset (lilv, src/lilv_config.h).
 DEFAULT_LV2_PATH = ("~/.lv2", "/usr/local/lib/lv2", "/usr/lib/lv2")
 
@@ -57,6 +61,15 @@ def log_file() -> Path:
     if state.startswith("/"):
         return Path(state) / "liftmag" / "lv2-plugin.log"
     return Path.home() / ".cache" / "liftmag" / "lv2-plugin.log"
+
+
+def recent_control_notes(path: Path, limit: int = RECENT_NOTES) -> list[str]:
+    """The latest log lines about replaced control values (oldest first)."""
+    try:
+        text = path.read_text(errors="replace")
+    except OSError:
+        return []
+    return [line for line in text.splitlines() if CONTROLS_NOTE in line][-limit:]
 
 
 def lv2_search_path() -> list[Path]:
@@ -192,8 +205,10 @@ def run(args: argparse.Namespace) -> int:
         return 0
 
     records = [describe(b) for b in _bundles(dest)]
+    notes = recent_control_notes(log_file())
     if args.json:
-        json.dump({"bundles": records, "log_file": str(log_file())}, sys.stdout, indent=2)
+        json.dump({"bundles": records, "log_file": str(log_file()), "control_notes": notes},
+                  sys.stdout, indent=2)
         sys.stdout.write("\n")
         return 0
     if not records:
@@ -210,4 +225,9 @@ def run(args: argparse.Namespace) -> int:
         print(f"  in LV2 path:    {'yes' if r['in_lv2_path'] else 'no'}")
         print(f"  up to date:     {state}")
     print(f"log file: {log_file()}")
+    if notes:
+        print("control values the plugin did not take as given (latest last; a host that "
+              "starts controls at 0 gets the defaults):")
+        for line in notes:
+            print(f"  {line}")
     return 0
