@@ -120,6 +120,32 @@ class _Derived:
     g_white: NDArray  # (F, M)
     residual: NDArray  # (F,) MVDR residual noise power
     lifted: dict  # estimator-specific arrays
+    mvdr: NDArray  # (F, M) MVDR weights h, z = h^H y (the look-ahead stage's presence)
+
+
+@dataclass(frozen=True)
+class TakeStatistics:
+    """What a first pass over the whole take learned (:func:`analyse_take`).
+
+    ``noise`` is the noise of every speech pause of the take (presence-weighted, no
+    forgetting), an automatic noise model; ``speech_covariance`` the presence-weighted
+    noisy-speech covariance of all its speech frames, from which the talker's RTF is found;
+    ``noise_share`` and ``speech_share`` (F,) the mean weight per tracked frame, so a seed
+    can stand for as many frames as the running statistics would hold in steady state.
+    """
+
+    noise: NoiseModel
+    speech_covariance: NDArray
+    noise_share: NDArray
+    speech_share: NDArray
+    frames: int
+
+    @property
+    def pause_duration_s(self) -> float:
+        """Seconds of speech pauses behind the noise estimate (median over bins)."""
+        return float(np.median(self.noise_share)) * self.frames * TRACK_STRIDE / (
+            self.noise.sample_rate_hz / self.noise.hop
+        )
 
 
 def _smooth_presence(spp: NDArray, previous: NDArray) -> NDArray:
@@ -244,6 +270,7 @@ class Processor:
         sample_rate_hz: float,
         n_channels: int,
         noise_model: NoiseModel | None = None,
+        take: TakeStatistics | None = None,
     ) -> None:
         if int(n_channels) != n_channels or n_channels < 2:
             raise ValueError(
@@ -255,6 +282,36 @@ class Processor:
         self._init_stream(settings)
         if noise_model is not None:
             self.set_noise_model(noise_model)
+        if take is not None:
+            self._seed_take(take)
+
+    def _seed_take(self, take: TakeStatistics) -> None:
+        """Start the running statistics from the whole take instead of cold.
+
+        Each is seeded with the take's mean moments counted as the weight it would hold in
+        steady state (its memory in frames times the take's mean presence weight), as if the
+        take had been heard once already; its own frames then replace the seed at the pace of
+        its memory, so a moving talker or a changing noise is still followed.
+        """
+        s = self.settings
+        problem = take.noise.mismatch(
+            self.sample_rate_hz, self.config.frame_length, self.config.hop, self.n_channels
+        )
+        if problem:
+            raise ValueError(problem.replace("noise model", "take analysis"))
+        if s.noise_mode == "track" and self._model_frames == 0 and take.frames:
+            steady = 1.0 / (1.0 - self._noise_forgetting**TRACK_STRIDE)
+            weight = np.maximum(take.noise_share * steady, 1e-3)
+            self._noise.seed_moments(
+                take.noise.covariance, take.noise.lift_second_moment, weight
+            )
+            self._model_frames = float(np.median(weight))
+        if s.target_deg is None and take.frames:
+            steady = 1.0 / (1.0 - self._speech_forgetting**TRACK_STRIDE)
+            self._speech.seed_moments(take.speech_covariance, None, take.speech_share * steady)
+        self._derived = None
+        self._noise_cache_key = None
+        self._mv_cache_epoch = None
 
     # ------------------------------------------------------------------ set-up and state
 
@@ -268,7 +325,16 @@ class Processor:
         self.config: StftConfig = stft_config(self.sample_rate_hz, settings.frame_s)
         cfg = self.config
         self.n_output_channels = self.n_channels if settings.output_mode == "keep-image" else 1
-        self.latency_samples = cfg.latency_samples
+        # The statistics stage runs lookahead_frames ahead of the estimators, so every frame is
+        # estimated with statistics that have seen that much of its future.
+        self.lookahead_frames = round(settings.lookahead_s / cfg.hop_s)
+        self.latency_samples = cfg.latency_samples + self.lookahead_frames * cfg.hop
+        self._pending = np.zeros((0, cfg.n_bins, self.n_channels), dtype=complex)
+        self._silence_left = self.lookahead_frames  # output frames before the first input frame
+        self._tracking = True  # False once the input has ended (flushing the look-ahead)
+        self._take_noise: MomentAccumulator | None = None  # whole-take sums (analysis pass)
+        self._take_speech: MomentAccumulator | None = None
+        self._take_frames = 0
         self._stft = StreamingStft(cfg, self.n_channels, self.n_output_channels)
         self._fifo = np.zeros((self.n_output_channels, cfg.hop - 1))
         f, m = cfg.n_bins, self.n_channels
@@ -323,6 +389,7 @@ class Processor:
         old = self.settings
         structural = (
             settings.frame_s != old.frame_s
+            or settings.lookahead_s != old.lookahead_s
             or settings.output_mode != old.output_mode
             or settings.reference_channel != old.reference_channel
         )
@@ -374,6 +441,10 @@ class Processor:
         if not np.all(np.isfinite(x)):
             raise ValueError("input block contains NaN or infinite samples")
         spectra = np.swapaxes(self._stft.analyse(x), 1, 2)  # (frames, bins, channels)
+        if self._take_noise is not None:  # analysis pass: statistics only, no output
+            for batch in self._batches(spectra):
+                self._lead(batch)
+            return np.zeros((self.n_output_channels, 0))
         if spectra.shape[0]:
             out_spec = np.concatenate(
                 [self._process_batch(batch) for batch in self._batches(spectra)], axis=0
@@ -409,31 +480,77 @@ class Processor:
             and self.settings.noise_mode != "hold"
         )
 
-    def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
-        """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F)."""
+    def end_of_input(self) -> None:
+        """The input has ended: later pushes only flush the look-ahead and the STFT.
+
+        The statistics stop learning, so the padding that flushes the last frames does not
+        count as room tone. Offline runs call this (:func:`run_processor`); a host does not.
+        """
+        self._tracking = False
+
+    def _lead(self, y: NDArray[np.complex128]) -> _Derived | None:
+        """The statistics stage on the newest frames ``y`` (K, F, M); returns derived values.
+
+        Refreshes derived values at the stream's refresh points and updates the noise and
+        speech statistics from the frames' MVDR presence.
+        """
         s = self.settings
         n = self._frame_index
         if s.estimator == "passthrough":  # nothing to estimate or learn
             self._frame_index += y.shape[0]
-            self.report.frames += y.shape[0]
-            return self._output(y, y[:, :, s.reference_channel], None)
-        learning = self._learning_start(n)
+            return None
+        learning = self._learning_start(n) and self._tracking
         if learning:
             self._noise.update(y[0], 1.0, 1.0)
         learning_ended = n == self._initial_frames and self._model_frames == 0
         if self._derived is None or n % self._refresh_frames == 0 or learning_ended:
             self._derived = self._refresh()
         der = self._derived
+        if not learning and self._tracking:
+            z = np.einsum("fi,kfi->kf", np.conj(der.mvdr), y)
+            self._track(y, np.abs(z) ** 2 / np.maximum(der.residual, 1e-300))
+        self._frame_index += y.shape[0]
+        return der
+
+    def _delay(self, y: NDArray[np.complex128]) -> tuple[int, NDArray[np.complex128]]:
+        """Queue ``y`` for the look-ahead; return (silent frames, frames due for output)."""
         k_frames = y.shape[0]
+        silent = min(self._silence_left, k_frames)
+        self._silence_left -= silent
+        if not self.lookahead_frames:
+            return 0, y
+        queue = np.concatenate([self._pending, y], axis=0)
+        due = k_frames - silent
+        self._pending = queue[due:]
+        return silent, queue[:due]
+
+    def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
+        """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F).
+
+        The statistics stage takes ``y``; the estimators take the frames ``lookahead_frames``
+        older, with the same derived values (so they have seen that much future).
+        """
+        der = self._lead(y)
+        silent, y = self._delay(y)
+        out = self._estimate(y, der)
+        if silent:
+            out = np.concatenate(
+                [np.zeros((silent, self.n_output_channels, self.config.n_bins), complex), out]
+            )
+        return out
+
+    def _estimate(self, y: NDArray[np.complex128], der: _Derived | None) -> NDArray:
+        """The estimators and the shared post-stage on frames ``y`` (K, F, M)."""
+        s = self.settings
+        k_frames = y.shape[0]
+        self.report.frames += k_frames
+        if der is None or k_frames == 0:  # passthrough, or nothing due yet
+            return self._output(y, y[:, :, s.reference_channel], None)
 
         yw = np.einsum("fij,kfj->kfi", der.whitener, y, optimize=True)
         z = np.einsum("fi,kfi->kf", np.conj(der.g_white), yw) * der.residual
         mvdr_power = np.abs(z) ** 2
         p_lin = mvdr_power - der.residual
-        if not learning and s.estimator != "passthrough":
-            self._track(y, mvdr_power / np.maximum(der.residual, 1e-300))
-        self._frame_index += k_frames
-        self.report.frames += k_frames
         self.report.bin_frames += p_lin.size
 
         y_ref = y[:, :, s.reference_channel]
@@ -576,6 +693,11 @@ class Processor:
             self._noise.update(y, 1.0, 1.0)
         if s.target_deg is None:
             self._speech.update(y_used, p_used, self._speech_forgetting**TRACK_STRIDE, lifted)
+        if self._take_noise is not None and self._take_speech is not None:
+            # Whole-take sums: every speech pause and every speech frame, no forgetting.
+            self._take_noise.update(y_used, 1.0 - p_used, 1.0, lifted)
+            self._take_speech.update(y_used, p_used, 1.0, lifted)
+            self._take_frames += y_used.shape[0]
 
     # ------------------------------------------------------------------ derived values
 
@@ -620,7 +742,9 @@ class Processor:
             lifted.update(self._lifted_derived(
                 cov, lift2, inv, g_white, self._learning_start(self._frame_index)
             ))
-        return _Derived(inv, g, g_white, residual, lifted)
+        # z = residual g~^H L^-1 y = h^H y with h = residual L^-H g~.
+        mvdr = residual[:, None] * np.einsum("fji,fj->fi", np.conj(inv), g_white)
+        return _Derived(inv, g, g_white, residual, lifted, mvdr)
 
     def _lifted_derived(
         self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray, learning: bool
@@ -808,18 +932,72 @@ def process_array(
     noise_model: NoiseModel | None = None,
     progress: Callable[[int], None] | None = None,
     chunk_samples: int = 1 << 16,
+    whole_take: bool = True,
 ) -> NDArray[np.float64]:
     """Offline processing: the streaming engine with its latency trimmed.
 
     ``x`` is ``(channels, samples)``; the result is ``(output_channels, samples)``,
     sample-aligned with ``x``. ``progress`` is called with the number of input samples done.
+    With ``whole_take`` a first pass (:func:`analyse_take`) starts the statistics from the
+    whole take; without it the result is what a host gets from the plugin with the same
+    settings (the look-ahead alone).
     """
     settings = settings or Settings()
     x = np.asarray(x, dtype=float)
     if x.ndim != 2:
         raise ValueError(f"expected (channels, samples), got shape {x.shape}")
-    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model)
+    take = None
+    if whole_take and uses_take_analysis(settings):
+        take = analyse_take(
+            settings, sample_rate_hz, x.shape[0], iter_blocks(x, chunk_samples), noise_model
+        )
+    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model, take)
     return run_processor(proc, iter_blocks(x, chunk_samples), x.shape[1], progress)
+
+
+def uses_take_analysis(settings: Settings) -> bool:
+    """Whether a first pass can tell the engine anything (it learns no noise in learn mode,
+    and nothing at all in passthrough or bypass)."""
+    return not (
+        settings.bypass or settings.estimator == "passthrough" or settings.noise_mode == "learn"
+    )
+
+
+def analyse_take(
+    settings: Settings,
+    sample_rate_hz: float,
+    n_channels: int,
+    blocks,
+    noise_model: NoiseModel | None = None,
+) -> TakeStatistics:
+    """First pass over a whole take: the statistics stage alone, summing over every frame.
+
+    The same tracker as :class:`Processor` (causal, no estimators, no synthesis) finds the
+    speech presence; the noise moments of every pause and the speech moments of every
+    speech frame are summed without forgetting. Memory does not grow with the take.
+    """
+    analysis = settings.replace(estimator="linear-wiener", lookahead_s=0.0, bypass=False)
+    proc = Processor(analysis, sample_rate_hz, n_channels, noise_model)
+    f = proc.config.n_bins
+    proc._take_noise = MomentAccumulator(f, proc.n_channels, with_lift=True)
+    proc._take_speech = MomentAccumulator(f, proc.n_channels, with_lift=False)
+    for block in blocks:
+        proc.push(block)
+    cfg = proc.config
+    noise, speech = proc._take_noise, proc._take_speech
+    cov, lift2 = noise.means()
+    speech_cov, _ = speech.means()
+    frames = max(proc._take_frames, 1)
+    model = NoiseModel(
+        covariance=cov, lift_second_moment=lift2,
+        frames=float(np.median(noise.effective_frames())),
+        sample_rate_hz=cfg.sample_rate_hz, frame_length=cfg.frame_length, hop=cfg.hop,
+        n_channels=proc.n_channels, description="the take's own speech pauses",
+    )
+    return TakeStatistics(
+        noise=model, speech_covariance=speech_cov, noise_share=noise.weight / frames,
+        speech_share=speech.weight / frames, frames=proc._take_frames,
+    )
 
 
 def iter_blocks(x: NDArray, chunk_samples: int):
@@ -860,6 +1038,7 @@ def run_processor(
         done += block.shape[1]
         if progress is not None:
             progress(done)
+    proc.end_of_input()
     remaining = proc.latency_samples
     while remaining > 0:  # flush the tail with silence
         n = min(1 << 15, remaining)

@@ -179,12 +179,18 @@ class MomentAccumulator:
 
     def seed(self, model: NoiseModel) -> None:
         """Start from a model, counting it as ``model.frames`` frames of evidence."""
-        n = model.frames
-        self.lift_first = rho(model.covariance) * n
-        if self.lift_sum is not None:
-            self.lift_sum = model.lift_second_moment * n
-        self.weight = np.full(self.weight.shape, n)
-        self.weight_sq = np.full(self.weight.shape, n)
+        self.seed_moments(model.covariance, model.lift_second_moment, model.frames)
+
+    def seed_moments(
+        self, covariance: NDArray, lift_second_moment: NDArray | None, frames: NDArray | float
+    ) -> None:
+        """Start from mean moments, counting them as ``frames`` (per bin or one number)."""
+        n = np.broadcast_to(np.asarray(frames, dtype=float), self.weight.shape)
+        self.lift_first = rho(covariance) * n[:, None]
+        if self.lift_sum is not None and lift_second_moment is not None:
+            self.lift_sum = lift_second_moment * n[:, None, None]
+        self.weight = n.copy()
+        self.weight_sq = n.copy()
         self.version += 1
 
     def means(self) -> tuple[NDArray[np.complex128], NDArray[np.float64] | None]:

@@ -151,6 +151,13 @@ class Settings:
         default=3.0,
         metadata=_meta("memory of the noise tracker", unit="s", minimum=0.2, maximum=600.0),
     )
+    lookahead_s: float = field(
+        default=3.0,
+        metadata=_meta(
+            "future the statistics see before a frame is cleaned (added to the latency); "
+            "0 = causal", unit="s", minimum=0.0, maximum=10.0,
+        ),
+    )
     smoothing: float = field(
         default=0.98,
         metadata=_meta(
