@@ -79,6 +79,7 @@ SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann
 MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
 MIN_SPEECH_FRAMES = 4.0  # speech-weighted frames a bin needs before its RTF comes from data
 PRINCIPAL_SQUARINGS = 5  # H^(2^5) isolates the principal eigenvector (see _principal_eigenpair)
+TAKE_PRIOR_SHARE = 1.0  # whole-take means kept as a fixed prior worth the running weight
 ABSOLUTE_POWER_FLOOR = 1e-20  # keeps digital silence from making singular covariances
 
 
@@ -291,7 +292,11 @@ class Processor:
         Each is seeded with the take's mean moments counted as the weight it would hold in
         steady state (its memory in frames times the take's mean presence weight), as if the
         take had been heard once already; its own frames then replace the seed at the pace of
-        its memory, so a moving talker or a changing noise is still followed.
+        its memory, so a moving talker or a changing noise is still followed. The take's
+        means also stay as a fixed prior worth ``TAKE_PRIOR_SHARE`` of that weight, so the
+        local statistics are always averaged with the whole take's (measured on the 2-mic
+        rooms at 0 dB: +0.1 dB SI-SDR and +0.005 PESQ with a region or room tone, +0.12 dB
+        with the tracker alone, against the decaying seed alone).
         """
         s = self.settings
         problem = take.noise.mismatch(
@@ -305,10 +310,16 @@ class Processor:
             self._noise.seed_moments(
                 take.noise.covariance, take.noise.lift_second_moment, weight
             )
+            if TAKE_PRIOR_SHARE:
+                self._noise.set_prior(take.noise.covariance, take.noise.lift_second_moment,
+                                      TAKE_PRIOR_SHARE * weight)
             self._model_frames = float(np.median(weight))
         if s.target_deg is None and take.frames:
             steady = 1.0 / (1.0 - self._speech_forgetting**TRACK_STRIDE)
             self._speech.seed_moments(take.speech_covariance, None, take.speech_share * steady)
+            if TAKE_PRIOR_SHARE:
+                self._speech.set_prior(take.speech_covariance, None,
+                                       TAKE_PRIOR_SHARE * take.speech_share * steady)
         self._derived = None
         self._noise_cache_key = None
         self._mv_cache_epoch = None
@@ -716,7 +727,7 @@ class Processor:
         else:
             previous = self._derived.g if self._derived is not None else fallback
             g = previous
-            evidence = self._speech.weight >= MIN_SPEECH_FRAMES  # speech-weighted frames per bin
+            evidence = self._speech.total_weight() >= MIN_SPEECH_FRAMES  # speech frames per bin
             if evidence.any():
                 speech_cov, _ = self._speech.means()
                 g = _rtf_from_data(speech_cov, chol, inv, s.reference_channel, previous)
