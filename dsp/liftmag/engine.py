@@ -980,6 +980,7 @@ def analyse_take(
     n_channels: int,
     blocks,
     noise_model: NoiseModel | None = None,
+    progress: Callable[[int], None] | None = None,
 ) -> TakeStatistics:
     """First pass over a whole take: the statistics stage alone, summing over every frame.
 
@@ -992,8 +993,12 @@ def analyse_take(
     f = proc.config.n_bins
     proc._take_noise = MomentAccumulator(f, proc.n_channels, with_lift=True)
     proc._take_speech = MomentAccumulator(f, proc.n_channels, with_lift=False)
+    done = 0
     for block in blocks:
         proc.push(block)
+        done += block.shape[1]
+        if progress is not None:
+            progress(done)
     cfg = proc.config
     noise, speech = proc._take_noise, proc._take_speech
     cov, lift2 = noise.means()
