@@ -363,6 +363,7 @@ class Processor:
             spikes_per_bin=np.zeros(f, dtype=int), lifted_frames_per_bin=np.zeros(f, dtype=int)
         )
         self._geometry_g, self._null_w = self._geometry()
+        self._estimator = ESTIMATOR_OBJECTS.get(settings.estimator, LinearWiener())
         self._derived: _Derived | None = None
         self._noise_cache_key: tuple | None = None
         self._noise_cache_version = -1
@@ -411,6 +412,7 @@ class Processor:
                 self.set_noise_model(model)
             return
         self.settings = settings
+        self._estimator = ESTIMATOR_OBJECTS.get(settings.estimator, LinearWiener())
         self._noise_forgetting = float(np.exp(-self.config.hop_s / settings.noise_memory_s))
         self._speech_forgetting = float(np.exp(-self.config.hop_s / settings.speech_memory_s))
         self._geometry_g, self._null_w = self._geometry()
@@ -570,25 +572,13 @@ class Processor:
         if s.estimator == "mvdr":
             return self._output(y, z, None)
 
-        phase_ref = z
-        est = s.estimator
-        lf = der.lifted
-        if est == "delay-sum":
-            phase_ref = np.einsum("fi,kfi->kf", np.conj(lf["h_ds"]), y)
-            p_unbiased = np.abs(phase_ref) ** 2 - lf["noise_ds"]
-        elif est == "lifted-nulls":
-            p_unbiased = np.einsum("fd,kfd->kf", self._null_w, lift_snapshots(y) - lf["mu_v_raw"])
-        else:
-            p_unbiased = p_lin
-        if est in ("auto", "lifted-mv"):
-            active = lf["active"]  # bins where the lift is used
-            centred = lift_snapshots(yw[:, active]) - rho(np.eye(self.n_channels))
-            # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
-            # the last column, the part of the estimate that does not depend on the prior.
-            projected = np.einsum("fij,kfj->kfi", lf["projection"], centred, optimize=True)
-            weighted_c, fixed_part = projected[..., :-1], projected[..., -1]
-            lifted_bins = lf["n_spikes"] > 0 if est == "auto" else np.ones(len(p_lin[0]), bool)
-            self.report.lifted_frames_per_bin[lifted_bins] += k_frames
+        estimator = self._estimator
+        batch = FrameBatch(y, yw, z, mvdr_power, p_lin, der)
+        prepared = estimator.prepare(self, batch)
+        phase_ref = estimator.phase_reference(batch, prepared)
+        lifted_bins = estimator.lifted_bins(der, p_lin.shape[1])
+        self.report.lifted_frames_per_bin[lifted_bins] += k_frames
+        self.report.lifted_bin_frames += k_frames * int(np.count_nonzero(lifted_bins))
         amp = np.empty(p_lin.shape)
         # Everything of the decision-directed prior that does not depend on the previous frame
         # is computed for the whole batch; the loop keeps only the recursive part.
@@ -597,30 +587,7 @@ class Processor:
         for k in range(k_frames):  # the decision-directed prior is recursive in time
             carried = s.smoothing * self._prev_amp_sq
             prior = np.maximum(carried + fresh[k], prior_floor)
-            if est in ("linear-wiener", "delay-sum"):
-                p_hat = p_unbiased[k]
-                noise_eq = der.residual if est == "linear-wiener" else lf["noise_ds"]
-            elif est in ("auto", "lifted-mv"):
-                if isinstance(active, slice):  # every bin lifts
-                    p_hat, noise_eq = self._lifted_mv(weighted_c[k], fixed_part[k], prior, lf)
-                else:
-                    p_hat = p_lin[k].copy()
-                    noise_eq = der.residual.copy()
-                    p_hat[active], noise_eq[active] = self._lifted_mv(
-                        weighted_c[k], fixed_part[k], prior[active], lf
-                    )
-                self.report.lifted_bin_frames += lf["n_lifted"]
-            elif est == "lifted-nulls":
-                var = lf["null_var_noise"] + prior * lf["null_var_cross"]
-                p_hat = p_unbiased[k]
-                noise_eq = np.sqrt(prior**2 + np.maximum(var, 0.0)) - prior
-                self.report.lifted_bin_frames += len(p_hat)
-                self.report.lifted_frames_per_bin += 1
-            else:
-                p_hat = self._lifted_mmse(yw[k], prior, der, mvdr_power[k])
-                noise_eq = None
-                self.report.lifted_bin_frames += len(p_hat)
-                self.report.lifted_frames_per_bin += 1
+            p_hat, noise_eq = estimator.power(prepared, k, prior)
             amp[k] = self._post_stage(p_hat, noise_eq, carried)
 
         abs_ref = np.abs(y_ref)
@@ -734,25 +701,7 @@ class Processor:
                 g = np.where(evidence[:, None], g, previous)
         g_white = np.einsum("fij,fj->fi", inv, g)
         residual = 1.0 / np.maximum(np.sum(np.abs(g_white) ** 2, axis=-1), 1e-300)
-        lifted: dict = {}
-        est = s.estimator
-        if est == "delay-sum":
-            h = g / np.sum(np.abs(g) ** 2, axis=-1, keepdims=True)
-            lifted["h_ds"] = h
-            lifted["noise_ds"] = np.real(np.einsum("fi,fij,fj->f", np.conj(h), cov, h))
-        elif est == "lifted-nulls":
-            w = self._null_w
-            lifted["mu_v_raw"] = rho(cov)
-            lifted["null_var_noise"] = np.einsum(
-                "fi,fij,fj->f", w, gaussian_lift_covariance(cov), w
-            )
-            lifted["null_var_cross"] = np.einsum(
-                "fi,fij,fj->f", w, crossterm_lift_covariance(g, cov), w
-            )
-        elif est not in ("linear-wiener", "mvdr", "passthrough"):
-            lifted.update(self._lifted_derived(
-                cov, lift2, inv, g_white, self._learning_start(self._frame_index)
-            ))
+        lifted = self._estimator.derive(self, cov, lift2, inv, g, g_white)
         # z = residual g~^H L^-1 y = h^H y with h = residual L^-H g~.
         mvdr = residual[:, None] * np.einsum("fji,fj->fi", np.conj(inv), g_white)
         return _Derived(inv, g, g_white, residual, lifted, mvdr)
@@ -972,6 +921,166 @@ def uses_take_analysis(settings: Settings) -> bool:
     return not (
         settings.bypass or settings.estimator == "passthrough" or settings.noise_mode == "learn"
     )
+
+
+# ----------------------------------------------------------------- per-frame estimators
+
+
+@dataclass(frozen=True)
+class FrameBatch:
+    """Frames sharing one refresh: raw ``y`` (K, F, M), whitened ``yw``, MVDR output ``z``
+    (K, F), its power, the linear unbiased power ``p_lin = |z|^2 - sigma_r^2``, and the
+    derived values of the refresh."""
+
+    y: NDArray
+    yw: NDArray
+    z: NDArray
+    mvdr_power: NDArray
+    p_lin: NDArray
+    der: _Derived
+
+
+class PowerEstimator:
+    """One speech-power estimator for the shared post-stage.
+
+    ``derive`` runs once per refresh (heavy per-bin algebra), ``prepare`` once per batch of
+    frames (vectorised over frames and bins), and ``power`` once per frame with the
+    decision-directed prior (the only recursive part): it returns an unbiased power ``P^``
+    and its noise-equivalent power ``sigma_eq^2``, or an already-shrunk MMSE estimate with
+    ``None``. This base class is the linear MVDR + Wiener post-filter.
+    """
+
+    def derive(self, proc: Processor, cov: NDArray, lift2: NDArray, inv: NDArray,
+               g: NDArray, g_white: NDArray) -> dict:
+        return {}
+
+    def prepare(self, proc: Processor, batch: FrameBatch) -> object:
+        return batch
+
+    def power(self, prepared, k: int, prior: NDArray) -> tuple[NDArray, NDArray | None]:
+        return prepared.p_lin[k], prepared.der.residual
+
+    def phase_reference(self, batch: FrameBatch, prepared) -> NDArray:
+        return batch.z
+
+    def lifted_bins(self, der: _Derived, n_bins: int) -> NDArray:
+        """Bins that use fourth-order statistics in this refresh (for the report)."""
+        return np.zeros(n_bins, dtype=bool)
+
+
+class LinearWiener(PowerEstimator):
+    """MVDR output power minus its residual noise, then the Wiener post-stage."""
+
+
+class DelaySum(PowerEstimator):
+    """Delay-and-sum beamformer ``h = g / |g|^2`` and its output noise power."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        h = g / np.sum(np.abs(g) ** 2, axis=-1, keepdims=True)
+        return {"h_ds": h, "noise_ds": np.real(np.einsum("fi,fij,fj->f", np.conj(h), cov, h))}
+
+    def prepare(self, proc, batch):
+        lf = batch.der.lifted
+        out = np.einsum("fi,kfi->kf", np.conj(lf["h_ds"]), batch.y)
+        return out, np.abs(out) ** 2 - lf["noise_ds"], lf["noise_ds"]
+
+    def power(self, prepared, k, prior):
+        return prepared[1][k], prepared[2]
+
+    def phase_reference(self, batch, prepared):
+        return prepared[0]
+
+
+class LiftedNulls(PowerEstimator):
+    """Closed-form power nulls toward given bearings (weights from the geometry)."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        w = proc._null_w
+        return {
+            "mu_v_raw": rho(cov),
+            "null_var_noise": np.einsum("fi,fij,fj->f", w, gaussian_lift_covariance(cov), w),
+            "null_var_cross": np.einsum("fi,fij,fj->f", w, crossterm_lift_covariance(g, cov), w),
+        }
+
+    def prepare(self, proc, batch):
+        lf = batch.der.lifted
+        p = np.einsum("fd,kfd->kf", proc._null_w, lift_snapshots(batch.y) - lf["mu_v_raw"])
+        return p, lf
+
+    def power(self, prepared, k, prior):
+        p, lf = prepared
+        var = lf["null_var_noise"] + prior * lf["null_var_cross"]
+        return p[k], np.sqrt(prior**2 + np.maximum(var, 0.0)) - prior
+
+    def lifted_bins(self, der, n_bins):
+        return np.ones(n_bins, dtype=bool)
+
+
+class LiftedMinimumVariance(PowerEstimator):
+    """Lifted minimum-variance unbiased power (``lifted-mv``; ``auto`` where the noise has
+    fourth-order structure, linear elsewhere), see :meth:`Processor._lifted_mv`."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        return proc._lifted_derived(
+            cov, lift2, inv, g_white, proc._learning_start(proc._frame_index)
+        )
+
+    def prepare(self, proc, batch):
+        lf = batch.der.lifted
+        active = lf["active"]  # bins where the lift is used
+        centred = lift_snapshots(batch.yw[:, active]) - rho(np.eye(batch.y.shape[-1]))
+        # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
+        # the last column, the part of the estimate that does not depend on the prior.
+        projected = np.einsum("fij,kfj->kfi", lf["projection"], centred, optimize=True)
+        return projected[..., :-1], projected[..., -1], batch
+
+    def power(self, prepared, k, prior):
+        weighted_c, fixed_part, batch = prepared
+        lf = batch.der.lifted
+        active = lf["active"]
+        if isinstance(active, slice):  # every bin lifts
+            return Processor._lifted_mv(weighted_c[k], fixed_part[k], prior, lf)
+        p_hat = batch.p_lin[k].copy()
+        noise_eq = batch.der.residual.copy()
+        p_hat[active], noise_eq[active] = Processor._lifted_mv(
+            weighted_c[k], fixed_part[k], prior[active], lf
+        )
+        return p_hat, noise_eq
+
+    def lifted_bins(self, der, n_bins):
+        mask = np.zeros(n_bins, dtype=bool)
+        mask[der.lifted["active"]] = True
+        return mask
+
+
+class LiftedShrunk(PowerEstimator):
+    """Shrunk (MMSE-type) lifted power: lifted-wiener, -affine, -wiener-fixed."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        return LiftedMinimumVariance.derive(self, proc, cov, lift2, inv, g, g_white)
+
+    def prepare(self, proc, batch):
+        return proc, batch
+
+    def power(self, prepared, k, prior):
+        proc, batch = prepared
+        return proc._lifted_mmse(batch.yw[k], prior, batch.der, batch.mvdr_power[k]), None
+
+    def lifted_bins(self, der, n_bins):
+        return np.ones(n_bins, dtype=bool)
+
+
+# The post-staged estimators by identifier; mvdr and passthrough skip the post-stage.
+ESTIMATOR_OBJECTS: dict[str, PowerEstimator] = {
+    "auto": LiftedMinimumVariance(),
+    "lifted-mv": LiftedMinimumVariance(),
+    "lifted-wiener": LiftedShrunk(),
+    "lifted-affine": LiftedShrunk(),
+    "lifted-wiener-fixed": LiftedShrunk(),
+    "lifted-nulls": LiftedNulls(),
+    "linear-wiener": LinearWiener(),
+    "delay-sum": DelaySum(),
+}
 
 
 def analyse_take(
