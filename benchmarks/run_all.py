@@ -11,6 +11,7 @@ SCRIPTS = [
     ["bench_estimators.py"],
     ["bench_engine.py", "--memory"],
     ["quality_rooms.py"],
+    ["quality_varied.py"],
     ["bench_plugin.py"],
     ["bench_batch.py"],
 ]
