@@ -340,8 +340,11 @@ class Processor:
         # estimated with statistics that have seen that much of its future.
         self.lookahead_frames = round(settings.lookahead_s / cfg.hop_s)
         self.latency_samples = cfg.latency_samples + self.lookahead_frames * cfg.hop
-        self._pending = np.zeros((0, cfg.n_bins, self.n_channels), dtype=complex)
-        self._silence_left = self.lookahead_frames  # output frames before the first input frame
+        # Ring of the frames waiting for the estimators; it starts full of placeholders for
+        # the frames before the input's first, which leave as silence.
+        self._pending = np.zeros((self.lookahead_frames, cfg.n_bins, self.n_channels), complex)
+        self._pending_start = 0
+        self._silence_left = self.lookahead_frames
         self._tracking = True  # False once the input has ended (flushing the look-ahead)
         self._take_noise: MomentAccumulator | None = None  # whole-take sums (analysis pass)
         self._take_speech: MomentAccumulator | None = None
@@ -526,16 +529,27 @@ class Processor:
         return der
 
     def _delay(self, y: NDArray[np.complex128]) -> tuple[int, NDArray[np.complex128]]:
-        """Queue ``y`` for the look-ahead; return (silent frames, frames due for output)."""
-        k_frames = y.shape[0]
+        """Queue ``y`` for the look-ahead; return (silent frames, frames due for output).
+
+        A ring buffer of ``lookahead_frames`` frames: each batch copies only its own frames
+        in and the same number out, whatever the look-ahead.
+        """
+        k_frames, size = y.shape[0], self.lookahead_frames
         silent = min(self._silence_left, k_frames)
         self._silence_left -= silent
-        if not self.lookahead_frames:
+        if not size:
             return 0, y
-        queue = np.concatenate([self._pending, y], axis=0)
-        due = k_frames - silent
-        self._pending = queue[due:]
-        return silent, queue[:due]
+        if k_frames >= size:  # the whole ring leaves, then the oldest of y
+            order = (self._pending_start + np.arange(size)) % size
+            due = np.concatenate([self._pending[order], y[: k_frames - size]])
+            self._pending[:] = y[k_frames - size :]
+            self._pending_start = 0
+        else:
+            slots = (self._pending_start + np.arange(k_frames)) % size
+            due = self._pending[slots]
+            self._pending[slots] = y
+            self._pending_start = (self._pending_start + k_frames) % size
+        return silent, due[silent:]
 
     def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
         """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F).
@@ -1100,6 +1114,8 @@ def analyse_take(
     analysis = settings.replace(estimator="linear-wiener", lookahead_s=0.0, bypass=False)
     proc = Processor(analysis, sample_rate_hz, n_channels, noise_model)
     f = proc.config.n_bins
+    if noise_model is None:  # the linear tracker needs no fourth-order running sums
+        proc._noise = MomentAccumulator(f, proc.n_channels, with_lift=False)
     proc._take_noise = MomentAccumulator(f, proc.n_channels, with_lift=True)
     proc._take_speech = MomentAccumulator(f, proc.n_channels, with_lift=False)
     done = 0
