@@ -86,7 +86,7 @@ class Settings:
         ),
     )
     reduction_limit_db: float = field(
-        default=18.0,
+        default=24.0,
         metadata=_meta(
             "deepest reduction applied to any bin; lower keeps more room sound",
             unit="dB", minimum=0.0, maximum=40.0, lv2_port=True, lv2_label="Reduction limit",
