@@ -1116,7 +1116,9 @@ def analyse_take(
     f = proc.config.n_bins
     if noise_model is None:  # the linear tracker needs no fourth-order running sums
         proc._noise = MomentAccumulator(f, proc.n_channels, with_lift=False)
-    proc._take_noise = MomentAccumulator(f, proc.n_channels, with_lift=True)
+    # The take's fourth-order noise sums seed only a tracker that starts without a model.
+    seeds_noise = noise_model is None and settings.noise_mode == "track"
+    proc._take_noise = MomentAccumulator(f, proc.n_channels, with_lift=seeds_noise)
     proc._take_speech = MomentAccumulator(f, proc.n_channels, with_lift=False)
     done = 0
     for block in blocks:
@@ -1127,6 +1129,9 @@ def analyse_take(
     cfg = proc.config
     noise, speech = proc._take_noise, proc._take_speech
     cov, lift2 = noise.means()
+    if lift2 is None:  # not gathered (a model holds the noise): the Gaussian moments stand in
+        mean = rho(cov)
+        lift2 = gaussian_lift_covariance(cov) + mean[:, :, None] * mean[:, None, :]
     speech_cov, _ = speech.means()
     frames = max(proc._take_frames, 1)
     model = NoiseModel(
