@@ -1,9 +1,18 @@
 """The streaming engine: one ``Processor`` for the CLI, the plugin and the tests.
 
 Blocks of any size go in, blocks of the same size come out, delayed by a fixed latency of
-``frame_length - 1`` samples (:attr:`Processor.latency_samples`); the output does not
-depend on how the input was cut into blocks. :func:`process_array` is the same engine
-with the latency trimmed, so its output is sample-aligned with its input.
+``frame_length - 1`` samples plus the look-ahead (:attr:`Processor.latency_samples`); the
+output does not depend on how the input was cut into blocks. :func:`process_array` is the
+same engine with the latency trimmed, so its output is sample-aligned with its input.
+
+Statistics have one stage and a policy. The statistics stage (speech presence, noise and
+speech moments, refreshes of the derived values) takes each frame as it arrives; the
+estimators and the post-stage take it ``lookahead_s`` later, with the derived values of the
+newest frame, so they have seen that much future (0 s is the causal engine). For files a first
+pass (:func:`analyse_take`) runs the statistics stage alone over the whole take and sums its
+pauses and speech frames without forgetting; the second pass starts from those sums (and
+keeps them as a fixed prior) instead of cold. Causal, look-ahead and whole take are therefore
+one engine with two settings, not three copies.
 
 Per STFT frame and bin (all bins at once):
 
