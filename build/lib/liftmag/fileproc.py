@@ -16,13 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from liftmag import audio_io
-from liftmag.engine import (
-    NoiseLearner,
-    Processor,
-    analyse_take,
-    run_processor,
-    uses_take_analysis,
-)
+from liftmag.engine import NoiseLearner, Processor, run_processor
 from liftmag.noise import NoiseModel
 from liftmag.settings import Settings
 
@@ -153,7 +147,6 @@ def process_file(
     force: bool = False,
     subtype: str | None = None,
     progress: Callable[[int, int], None] | None = None,
-    whole_take: bool = True,
 ) -> ProcessResult:
     """Clean one take (a multichannel file or a group of mono stems) into ``output``.
 
@@ -161,11 +154,7 @@ def process_file(
     and subtype; ``bext``/``iXML`` chunks of a WAV input are carried over. It is written to
     a temporary file and renamed, so an interrupted run leaves nothing behind; an existing
     output is refused unless ``force``. ``progress(done_frames, total_frames)`` is called as
-    blocks complete (over both passes).
-
-    With ``whole_take`` the take is read twice: a first pass learns its noise (from every
-    speech pause, unless a model is given) and its talker, so the engine starts warm
-    (:func:`liftmag.engine.analyse_take`); without it the output is the plugin's.
+    blocks complete.
     """
     started = time.perf_counter()
     source = open_source(inputs)
@@ -192,20 +181,6 @@ def process_file(
             f"{min_frames / fs:.3f} s (a few STFT frames) to tell speech from noise"
         )
     total = source.frames
-    passes = 1
-    if whole_take and uses_take_analysis(settings):
-        passes = 2
-        take = analyse_take(
-            settings, fs, source.channels, audio_io.read_blocks(source, BLOCK_FRAMES),
-            noise_model,
-            progress=(lambda done: progress(done // 2, total)) if progress else None,
-        )
-        if noise_model is None and settings.noise_mode == "track":
-            noise_desc = (
-                f"learned from the take's own speech pauses ({take.pause_duration_s:.1f} s), "
-                "then tracked"
-            )
-        proc = Processor(settings, fs, source.channels, noise_model, take)
     with audio_io.AtomicAudioWriter(
         output, like=source, channels=proc.n_output_channels, subtype=subtype, force=force
     ) as writer:
@@ -213,10 +188,7 @@ def process_file(
             proc,
             audio_io.read_blocks(source, BLOCK_FRAMES),
             total,
-            progress=(
-                (lambda done: progress(((passes - 1) * total + done) // passes, total))
-                if progress else None
-            ),
+            progress=(lambda done: progress(done, total)) if progress else None,
             sink=writer.write,
         )
     report = writer.report
