@@ -3,7 +3,9 @@
 Speed: the demo scene (outdoor interview: generator, radio talker, ambience), resampled to
 48 kHz and looped to ``--seconds``, through ``process_array`` for M = 2 and M = 4 (the 4-mic
 take adds two channels made from the first two with a small delay and independent sensor
-noise), every estimator, against a bare STFT round trip (passthrough). Two noise set-ups:
+noise), every estimator, against a bare STFT round trip (passthrough). ``process_array`` reads
+the take twice (the whole-take first pass, then the engine with its 3 s look-ahead), as
+``liftmag process`` does; passthrough makes no first pass. Two noise set-ups:
 a model learned from 10 s of the scene's room tone (held, the recommended workflow) and the
 tracker alone (no room tone). One core: BLAS threads are pinned to 1 before numpy loads.
 Memory: ``liftmag process`` on generated 10-minute and 60-minute 48 kHz stereo PCM_16 files,

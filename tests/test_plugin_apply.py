@@ -44,6 +44,12 @@ def _noise(channels: int, n: int, seed: int) -> np.ndarray:
     return x.astype(np.float32).astype(np.float64)
 
 
+def _lookahead(fs: int) -> int:
+    """Samples of the engine's default look-ahead: inputs are longer by it, so that the
+    delayed output still covers what each test compares."""
+    return round(Settings().lookahead_s * fs)
+
+
 def _latency(settings: Settings, fs: int, channels: int, bundle: Path) -> int:
     return Processor(settings, fs, channels).latency_samples + support.block_frames(bundle)
 
@@ -55,7 +61,7 @@ def test_lv2apply_matches_process_array(bundle: Path, take, tmp_path: Path) -> N
     y = support.lv2apply(support.URI_2CH, x, fs, env, {"reduction_limit_db": 12.0},
                          workdir=tmp_path)
     latency = _latency(settings, fs, 2, bundle)
-    expected = process_array(x, fs, settings)[0]
+    expected = process_array(x, fs, settings, whole_take=False)[0]
     n = x.shape[1]
     assert y.shape == (2, n)
     # One output channel (cleaned) goes to both output ports.
@@ -77,19 +83,19 @@ def test_lv2apply_with_every_control_at_zero_gives_the_default(bundle: Path, tak
                                                                tmp_path: Path) -> None:
     # What a host that starts every control port at 0 gives (ecasound does).
     x, fs, _ = take
-    x = x[:, : 3 * fs]
+    x = x[:, : 3 * fs + _lookahead(fs)]
     zeros = {p.symbol: 0.0 for p in support.ttl_module().control_ports()}
     env = support.lv2_env(bundle.parent, tmp_path / "state")
     y = support.lv2apply(support.URI_2CH, x, fs, env, zeros, workdir=tmp_path)
     latency = _latency(Settings(), fs, 2, bundle)
-    expected = process_array(x, fs, Settings())[0]
+    expected = process_array(x, fs, Settings(), whole_take=False)[0]
     support.assert_f32_close(y[0, latency:], expected[: x.shape[1] - latency], "all zero")
     assert "reduction_limit_db 0 read as the default" in support.plugin_log(tmp_path / "state")
 
 
 def test_lv2apply_4ch_keep_image(bundle: Path, tmp_path: Path) -> None:
     fs = 16000
-    x = _noise(4, 2 * fs, seed=5)
+    x = _noise(4, 2 * fs + _lookahead(fs), seed=5)
     x[:, fs // 2:] += 0.2 * np.sin(2 * np.pi * 440 * np.arange(x.shape[1] - fs // 2) / fs)
     x = x.astype(np.float32).astype(np.float64)
     settings = Settings(output_mode="keep-image", estimator="mvdr")
@@ -102,7 +108,7 @@ def test_lv2apply_4ch_keep_image(bundle: Path, tmp_path: Path) -> None:
     env = support.lv2_env(bundle.parent, tmp_path / "state")
     y = support.lv2apply(support.URI_4CH, x, fs, env, controls, workdir=tmp_path)
     latency = _latency(settings, fs, 4, bundle)
-    expected = process_array(x, fs, settings)
+    expected = process_array(x, fs, settings, whole_take=False)
     n = x.shape[1]
     assert y.shape == (4, n) and expected.shape == (4, n)
     for c in range(4):
@@ -117,7 +123,7 @@ def _assert_dry(y: np.ndarray, x: np.ndarray, delay: int) -> None:
 
 def test_injected_exception_gives_delayed_dry_output(bundle: Path, tmp_path: Path) -> None:
     fs = 16000
-    x = _noise(2, fs, seed=7)
+    x = _noise(2, fs + _lookahead(fs), seed=7)
     state = tmp_path / "state"
     fault = {support.bridge_module().TEST_FAULT_ENV: "process"}
     env = support.lv2_env(bundle.parent, state, **fault)
@@ -169,11 +175,11 @@ def test_install_into_fresh_home_with_clean_environment(bundle: Path, take,
     assert support.URI_2CH in listed
 
     x, fs, _ = take
-    x = x[:, : 2 * fs]
+    x = x[:, : 2 * fs + _lookahead(fs)]
     clean_env = ["env", "-i", f"HOME={home}", f"LV2_PATH={home / '.lv2'}"]
     y = support.lv2apply(support.URI_2CH, x, fs, {}, workdir=tmp_path, env_command=clean_env)
     latency = _latency(Settings(), fs, 2, bundle)
-    expected = process_array(x, fs, Settings())[0]
+    expected = process_array(x, fs, Settings(), whole_take=False)[0]
     support.assert_f32_close(y[0, latency:], expected[: x.shape[1] - latency], "env -i")
     # Nothing went wrong, so nothing was logged (the log would be under ~/.cache/liftmag).
     assert not (home / ".cache" / "liftmag" / "lv2-plugin.log").exists()

@@ -13,6 +13,8 @@ from lv2host import support
 
 from liftmag.settings import Settings, settings_fields
 
+DEFAULT_LIMIT = f"{Settings().reduction_limit_db:g}"  # the default follows the settings
+
 ttl = support.ttl_module()
 bridge = support.bridge_module()
 
@@ -121,7 +123,8 @@ def test_every_control_at_zero_gives_the_default_settings() -> None:
     assert settings == Settings()
     # Only the value read as something else than itself is reported; "not set" is a 0 that
     # means what it says.
-    assert notes == ["reduction_limit_db 0 read as the default 18 (0 means the default)"]
+    assert notes == [
+        f"reduction_limit_db 0 read as the default {DEFAULT_LIMIT} (0 means the default)"]
 
 
 def test_zero_stands_for_the_default_only_where_zero_is_useless() -> None:
@@ -134,7 +137,7 @@ def test_zero_stands_for_the_default_only_where_zero_is_useless() -> None:
         if port.kind in ("enumeration", "toggle"):
             assert port.zero == "" and port.default == 0.0
     text = ttl.plugin_ttl(support.URI_2CH, 2, "dialogue-2ch")
-    assert 'lv2:scalePoint [ rdfs:label "default (18 dB)" ; rdf:value 0 ]' in text
+    assert f'lv2:scalePoint [ rdfs:label "default ({DEFAULT_LIMIT} dB)" ; rdf:value 0 ]' in text
     assert text.count('lv2:scalePoint [ rdfs:label "not set" ; rdf:value 0 ]') == 2
 
 
@@ -145,7 +148,7 @@ def test_a_bearing_with_a_spacing_is_kept_and_odd_values_are_noted() -> None:
     values, controls = _values(reduction_limit_db=-3.0, mic_spacing_m=5.0)
     settings, notes = bridge.settings_from_controls(values, controls)
     assert settings == Settings(mic_spacing_m=2.0)
-    assert notes == ["reduction_limit_db -3 read as the default 18",
+    assert notes == [f"reduction_limit_db -3 read as the default {DEFAULT_LIMIT}",
                      "mic_spacing_m 5 clamped to 2"]
 
 

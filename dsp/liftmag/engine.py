@@ -1,9 +1,18 @@
 """The streaming engine: one ``Processor`` for the CLI, the plugin and the tests.
 
 Blocks of any size go in, blocks of the same size come out, delayed by a fixed latency of
-``frame_length - 1`` samples (:attr:`Processor.latency_samples`); the output does not
-depend on how the input was cut into blocks. :func:`process_array` is the same engine
-with the latency trimmed, so its output is sample-aligned with its input.
+``frame_length - 1`` samples plus the look-ahead (:attr:`Processor.latency_samples`); the
+output does not depend on how the input was cut into blocks. :func:`process_array` is the
+same engine with the latency trimmed, so its output is sample-aligned with its input.
+
+Statistics have one stage and a policy. The statistics stage (speech presence, noise and
+speech moments, refreshes of the derived values) takes each frame as it arrives; the
+estimators and the post-stage take it ``lookahead_s`` later, with the derived values of the
+newest frame, so they have seen that much future (0 s is the causal engine). For files a first
+pass (:func:`analyse_take`) runs the statistics stage alone over the whole take and sums its
+pauses and speech frames without forgetting; the second pass starts from those sums (and
+keeps them as a fixed prior) instead of cold. Causal, look-ahead and whole take are therefore
+one engine with two settings, not three copies.
 
 Per STFT frame and bin (all bins at once):
 
@@ -79,6 +88,7 @@ SPEECH_PRIOR_SNR_DB = 15.0  # fixed a-priori SNR under speech presence (Gerkmann
 MIN_PRIOR_SNR_DB = -25.0  # lower bound of the decision-directed prior
 MIN_SPEECH_FRAMES = 4.0  # speech-weighted frames a bin needs before its RTF comes from data
 PRINCIPAL_SQUARINGS = 5  # H^(2^5) isolates the principal eigenvector (see _principal_eigenpair)
+TAKE_PRIOR_SHARE = 1.0  # whole-take means kept as a fixed prior worth the running weight
 ABSOLUTE_POWER_FLOOR = 1e-20  # keeps digital silence from making singular covariances
 
 
@@ -120,6 +130,32 @@ class _Derived:
     g_white: NDArray  # (F, M)
     residual: NDArray  # (F,) MVDR residual noise power
     lifted: dict  # estimator-specific arrays
+    mvdr: NDArray  # (F, M) MVDR weights h, z = h^H y (the look-ahead stage's presence)
+
+
+@dataclass(frozen=True)
+class TakeStatistics:
+    """What a first pass over the whole take learned (:func:`analyse_take`).
+
+    ``noise`` is the noise of every speech pause of the take (presence-weighted, no
+    forgetting), an automatic noise model; ``speech_covariance`` the presence-weighted
+    noisy-speech covariance of all its speech frames, from which the talker's RTF is found;
+    ``noise_share`` and ``speech_share`` (F,) the mean weight per tracked frame, so a seed
+    can stand for as many frames as the running statistics would hold in steady state.
+    """
+
+    noise: NoiseModel
+    speech_covariance: NDArray
+    noise_share: NDArray
+    speech_share: NDArray
+    frames: int
+
+    @property
+    def pause_duration_s(self) -> float:
+        """Seconds of speech pauses behind the noise estimate (median over bins)."""
+        return float(np.median(self.noise_share)) * self.frames * TRACK_STRIDE / (
+            self.noise.sample_rate_hz / self.noise.hop
+        )
 
 
 def _smooth_presence(spp: NDArray, previous: NDArray) -> NDArray:
@@ -244,6 +280,7 @@ class Processor:
         sample_rate_hz: float,
         n_channels: int,
         noise_model: NoiseModel | None = None,
+        take: TakeStatistics | None = None,
     ) -> None:
         if int(n_channels) != n_channels or n_channels < 2:
             raise ValueError(
@@ -255,6 +292,46 @@ class Processor:
         self._init_stream(settings)
         if noise_model is not None:
             self.set_noise_model(noise_model)
+        if take is not None:
+            self._seed_take(take)
+
+    def _seed_take(self, take: TakeStatistics) -> None:
+        """Start the running statistics from the whole take instead of cold.
+
+        Each is seeded with the take's mean moments counted as the weight it would hold in
+        steady state (its memory in frames times the take's mean presence weight), as if the
+        take had been heard once already; its own frames then replace the seed at the pace of
+        its memory, so a moving talker or a changing noise is still followed. The take's
+        means also stay as a fixed prior worth ``TAKE_PRIOR_SHARE`` of that weight, so the
+        local statistics are always averaged with the whole take's (measured on the 2-mic
+        rooms at 0 dB: +0.1 dB SI-SDR and +0.005 PESQ with a region or room tone, +0.12 dB
+        with the tracker alone, against the decaying seed alone).
+        """
+        s = self.settings
+        problem = take.noise.mismatch(
+            self.sample_rate_hz, self.config.frame_length, self.config.hop, self.n_channels
+        )
+        if problem:
+            raise ValueError(problem.replace("noise model", "take analysis"))
+        if s.noise_mode == "track" and self._model_frames == 0 and take.frames:
+            steady = 1.0 / (1.0 - self._noise_forgetting**TRACK_STRIDE)
+            weight = np.maximum(take.noise_share * steady, 1e-3)
+            self._noise.seed_moments(
+                take.noise.covariance, take.noise.lift_second_moment, weight
+            )
+            if TAKE_PRIOR_SHARE:
+                self._noise.set_prior(take.noise.covariance, take.noise.lift_second_moment,
+                                      TAKE_PRIOR_SHARE * weight)
+            self._model_frames = float(np.median(weight))
+        if s.target_deg is None and take.frames:
+            steady = 1.0 / (1.0 - self._speech_forgetting**TRACK_STRIDE)
+            self._speech.seed_moments(take.speech_covariance, None, take.speech_share * steady)
+            if TAKE_PRIOR_SHARE:
+                self._speech.set_prior(take.speech_covariance, None,
+                                       TAKE_PRIOR_SHARE * take.speech_share * steady)
+        self._derived = None
+        self._noise_cache_key = None
+        self._mv_cache_epoch = None
 
     # ------------------------------------------------------------------ set-up and state
 
@@ -268,7 +345,19 @@ class Processor:
         self.config: StftConfig = stft_config(self.sample_rate_hz, settings.frame_s)
         cfg = self.config
         self.n_output_channels = self.n_channels if settings.output_mode == "keep-image" else 1
-        self.latency_samples = cfg.latency_samples
+        # The statistics stage runs lookahead_frames ahead of the estimators, so every frame is
+        # estimated with statistics that have seen that much of its future.
+        self.lookahead_frames = round(settings.lookahead_s / cfg.hop_s)
+        self.latency_samples = cfg.latency_samples + self.lookahead_frames * cfg.hop
+        # Ring of the frames waiting for the estimators; it starts full of placeholders for
+        # the frames before the input's first, which leave as silence.
+        self._pending = np.zeros((self.lookahead_frames, cfg.n_bins, self.n_channels), complex)
+        self._pending_start = 0
+        self._silence_left = self.lookahead_frames
+        self._tracking = True  # False once the input has ended (flushing the look-ahead)
+        self._take_noise: MomentAccumulator | None = None  # whole-take sums (analysis pass)
+        self._take_speech: MomentAccumulator | None = None
+        self._take_frames = 0
         self._stft = StreamingStft(cfg, self.n_channels, self.n_output_channels)
         self._fifo = np.zeros((self.n_output_channels, cfg.hop - 1))
         f, m = cfg.n_bins, self.n_channels
@@ -286,6 +375,7 @@ class Processor:
             spikes_per_bin=np.zeros(f, dtype=int), lifted_frames_per_bin=np.zeros(f, dtype=int)
         )
         self._geometry_g, self._null_w = self._geometry()
+        self._estimator = ESTIMATOR_OBJECTS.get(settings.estimator, LinearWiener())
         self._derived: _Derived | None = None
         self._noise_cache_key: tuple | None = None
         self._noise_cache_version = -1
@@ -323,6 +413,7 @@ class Processor:
         old = self.settings
         structural = (
             settings.frame_s != old.frame_s
+            or settings.lookahead_s != old.lookahead_s
             or settings.output_mode != old.output_mode
             or settings.reference_channel != old.reference_channel
         )
@@ -333,6 +424,7 @@ class Processor:
                 self.set_noise_model(model)
             return
         self.settings = settings
+        self._estimator = ESTIMATOR_OBJECTS.get(settings.estimator, LinearWiener())
         self._noise_forgetting = float(np.exp(-self.config.hop_s / settings.noise_memory_s))
         self._speech_forgetting = float(np.exp(-self.config.hop_s / settings.speech_memory_s))
         self._geometry_g, self._null_w = self._geometry()
@@ -374,6 +466,10 @@ class Processor:
         if not np.all(np.isfinite(x)):
             raise ValueError("input block contains NaN or infinite samples")
         spectra = np.swapaxes(self._stft.analyse(x), 1, 2)  # (frames, bins, channels)
+        if self._take_noise is not None:  # analysis pass: statistics only, no output
+            for batch in self._batches(spectra):
+                self._lead(batch)
+            return np.zeros((self.n_output_channels, 0))
         if spectra.shape[0]:
             out_spec = np.concatenate(
                 [self._process_batch(batch) for batch in self._batches(spectra)], axis=0
@@ -409,31 +505,88 @@ class Processor:
             and self.settings.noise_mode != "hold"
         )
 
-    def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
-        """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F)."""
+    def end_of_input(self) -> None:
+        """The input has ended: later pushes only flush the look-ahead and the STFT.
+
+        The statistics stop learning, so the padding that flushes the last frames does not
+        count as room tone. Offline runs call this (:func:`run_processor`); a host does not.
+        """
+        self._tracking = False
+
+    def _lead(self, y: NDArray[np.complex128]) -> _Derived | None:
+        """The statistics stage on the newest frames ``y`` (K, F, M); returns derived values.
+
+        Refreshes derived values at the stream's refresh points and updates the noise and
+        speech statistics from the frames' MVDR presence.
+        """
         s = self.settings
         n = self._frame_index
         if s.estimator == "passthrough":  # nothing to estimate or learn
             self._frame_index += y.shape[0]
-            self.report.frames += y.shape[0]
-            return self._output(y, y[:, :, s.reference_channel], None)
-        learning = self._learning_start(n)
+            return None
+        learning = self._learning_start(n) and self._tracking
         if learning:
             self._noise.update(y[0], 1.0, 1.0)
         learning_ended = n == self._initial_frames and self._model_frames == 0
         if self._derived is None or n % self._refresh_frames == 0 or learning_ended:
             self._derived = self._refresh()
         der = self._derived
+        if not learning and self._tracking:
+            z = np.einsum("fi,kfi->kf", np.conj(der.mvdr), y)
+            self._track(y, np.abs(z) ** 2 / np.maximum(der.residual, 1e-300))
+        self._frame_index += y.shape[0]
+        return der
+
+    def _delay(self, y: NDArray[np.complex128]) -> tuple[int, NDArray[np.complex128]]:
+        """Queue ``y`` for the look-ahead; return (silent frames, frames due for output).
+
+        A ring buffer of ``lookahead_frames`` frames: each batch copies only its own frames
+        in and the same number out, whatever the look-ahead.
+        """
+        k_frames, size = y.shape[0], self.lookahead_frames
+        silent = min(self._silence_left, k_frames)
+        self._silence_left -= silent
+        if not size:
+            return 0, y
+        if k_frames >= size:  # the whole ring leaves, then the oldest of y
+            order = (self._pending_start + np.arange(size)) % size
+            due = np.concatenate([self._pending[order], y[: k_frames - size]])
+            self._pending[:] = y[k_frames - size :]
+            self._pending_start = 0
+        else:
+            slots = (self._pending_start + np.arange(k_frames)) % size
+            due = self._pending[slots]
+            self._pending[slots] = y
+            self._pending_start = (self._pending_start + k_frames) % size
+        return silent, due[silent:]
+
+    def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
+        """Frames ``y`` (K, F, M) sharing derived values -> output spectra (K, n_out, F).
+
+        The statistics stage takes ``y``; the estimators take the frames ``lookahead_frames``
+        older, with the same derived values (so they have seen that much future).
+        """
+        der = self._lead(y)
+        silent, y = self._delay(y)
+        out = self._estimate(y, der)
+        if silent:
+            out = np.concatenate(
+                [np.zeros((silent, self.n_output_channels, self.config.n_bins), complex), out]
+            )
+        return out
+
+    def _estimate(self, y: NDArray[np.complex128], der: _Derived | None) -> NDArray:
+        """The estimators and the shared post-stage on frames ``y`` (K, F, M)."""
+        s = self.settings
         k_frames = y.shape[0]
+        self.report.frames += k_frames
+        if der is None or k_frames == 0:  # passthrough, or nothing due yet
+            return self._output(y, y[:, :, s.reference_channel], None)
 
         yw = np.einsum("fij,kfj->kfi", der.whitener, y, optimize=True)
         z = np.einsum("fi,kfi->kf", np.conj(der.g_white), yw) * der.residual
         mvdr_power = np.abs(z) ** 2
         p_lin = mvdr_power - der.residual
-        if not learning and s.estimator != "passthrough":
-            self._track(y, mvdr_power / np.maximum(der.residual, 1e-300))
-        self._frame_index += k_frames
-        self.report.frames += k_frames
         self.report.bin_frames += p_lin.size
 
         y_ref = y[:, :, s.reference_channel]
@@ -442,25 +595,13 @@ class Processor:
         if s.estimator == "mvdr":
             return self._output(y, z, None)
 
-        phase_ref = z
-        est = s.estimator
-        lf = der.lifted
-        if est == "delay-sum":
-            phase_ref = np.einsum("fi,kfi->kf", np.conj(lf["h_ds"]), y)
-            p_unbiased = np.abs(phase_ref) ** 2 - lf["noise_ds"]
-        elif est == "lifted-nulls":
-            p_unbiased = np.einsum("fd,kfd->kf", self._null_w, lift_snapshots(y) - lf["mu_v_raw"])
-        else:
-            p_unbiased = p_lin
-        if est in ("auto", "lifted-mv"):
-            active = lf["active"]  # bins where the lift is used
-            centred = lift_snapshots(yw[:, active]) - rho(np.eye(self.n_channels))
-            # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
-            # the last column, the part of the estimate that does not depend on the prior.
-            projected = np.einsum("fij,kfj->kfi", lf["projection"], centred, optimize=True)
-            weighted_c, fixed_part = projected[..., :-1], projected[..., -1]
-            lifted_bins = lf["n_spikes"] > 0 if est == "auto" else np.ones(len(p_lin[0]), bool)
-            self.report.lifted_frames_per_bin[lifted_bins] += k_frames
+        estimator = self._estimator
+        batch = FrameBatch(y, yw, z, mvdr_power, p_lin, der)
+        prepared = estimator.prepare(self, batch)
+        phase_ref = estimator.phase_reference(batch, prepared)
+        lifted_bins = estimator.lifted_bins(der, p_lin.shape[1])
+        self.report.lifted_frames_per_bin[lifted_bins] += k_frames
+        self.report.lifted_bin_frames += k_frames * int(np.count_nonzero(lifted_bins))
         amp = np.empty(p_lin.shape)
         # Everything of the decision-directed prior that does not depend on the previous frame
         # is computed for the whole batch; the loop keeps only the recursive part.
@@ -469,30 +610,7 @@ class Processor:
         for k in range(k_frames):  # the decision-directed prior is recursive in time
             carried = s.smoothing * self._prev_amp_sq
             prior = np.maximum(carried + fresh[k], prior_floor)
-            if est in ("linear-wiener", "delay-sum"):
-                p_hat = p_unbiased[k]
-                noise_eq = der.residual if est == "linear-wiener" else lf["noise_ds"]
-            elif est in ("auto", "lifted-mv"):
-                if isinstance(active, slice):  # every bin lifts
-                    p_hat, noise_eq = self._lifted_mv(weighted_c[k], fixed_part[k], prior, lf)
-                else:
-                    p_hat = p_lin[k].copy()
-                    noise_eq = der.residual.copy()
-                    p_hat[active], noise_eq[active] = self._lifted_mv(
-                        weighted_c[k], fixed_part[k], prior[active], lf
-                    )
-                self.report.lifted_bin_frames += lf["n_lifted"]
-            elif est == "lifted-nulls":
-                var = lf["null_var_noise"] + prior * lf["null_var_cross"]
-                p_hat = p_unbiased[k]
-                noise_eq = np.sqrt(prior**2 + np.maximum(var, 0.0)) - prior
-                self.report.lifted_bin_frames += len(p_hat)
-                self.report.lifted_frames_per_bin += 1
-            else:
-                p_hat = self._lifted_mmse(yw[k], prior, der, mvdr_power[k])
-                noise_eq = None
-                self.report.lifted_bin_frames += len(p_hat)
-                self.report.lifted_frames_per_bin += 1
+            p_hat, noise_eq = estimator.power(prepared, k, prior)
             amp[k] = self._post_stage(p_hat, noise_eq, carried)
 
         abs_ref = np.abs(y_ref)
@@ -576,6 +694,11 @@ class Processor:
             self._noise.update(y, 1.0, 1.0)
         if s.target_deg is None:
             self._speech.update(y_used, p_used, self._speech_forgetting**TRACK_STRIDE, lifted)
+        if self._take_noise is not None and self._take_speech is not None:
+            # Whole-take sums: every speech pause and every speech frame, no forgetting.
+            self._take_noise.update(y_used, 1.0 - p_used, 1.0, lifted)
+            self._take_speech.update(y_used, p_used, 1.0, lifted)
+            self._take_frames += y_used.shape[0]
 
     # ------------------------------------------------------------------ derived values
 
@@ -594,33 +717,17 @@ class Processor:
         else:
             previous = self._derived.g if self._derived is not None else fallback
             g = previous
-            evidence = self._speech.weight >= MIN_SPEECH_FRAMES  # speech-weighted frames per bin
+            evidence = self._speech.total_weight() >= MIN_SPEECH_FRAMES  # speech frames per bin
             if evidence.any():
                 speech_cov, _ = self._speech.means()
                 g = _rtf_from_data(speech_cov, chol, inv, s.reference_channel, previous)
                 g = np.where(evidence[:, None], g, previous)
         g_white = np.einsum("fij,fj->fi", inv, g)
         residual = 1.0 / np.maximum(np.sum(np.abs(g_white) ** 2, axis=-1), 1e-300)
-        lifted: dict = {}
-        est = s.estimator
-        if est == "delay-sum":
-            h = g / np.sum(np.abs(g) ** 2, axis=-1, keepdims=True)
-            lifted["h_ds"] = h
-            lifted["noise_ds"] = np.real(np.einsum("fi,fij,fj->f", np.conj(h), cov, h))
-        elif est == "lifted-nulls":
-            w = self._null_w
-            lifted["mu_v_raw"] = rho(cov)
-            lifted["null_var_noise"] = np.einsum(
-                "fi,fij,fj->f", w, gaussian_lift_covariance(cov), w
-            )
-            lifted["null_var_cross"] = np.einsum(
-                "fi,fij,fj->f", w, crossterm_lift_covariance(g, cov), w
-            )
-        elif est not in ("linear-wiener", "mvdr", "passthrough"):
-            lifted.update(self._lifted_derived(
-                cov, lift2, inv, g_white, self._learning_start(self._frame_index)
-            ))
-        return _Derived(inv, g, g_white, residual, lifted)
+        lifted = self._estimator.derive(self, cov, lift2, inv, g, g_white)
+        # z = residual g~^H L^-1 y = h^H y with h = residual L^-H g~.
+        mvdr = residual[:, None] * np.einsum("fji,fj->fi", np.conj(inv), g_white)
+        return _Derived(inv, g, g_white, residual, lifted, mvdr)
 
     def _lifted_derived(
         self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray, learning: bool
@@ -808,18 +915,244 @@ def process_array(
     noise_model: NoiseModel | None = None,
     progress: Callable[[int], None] | None = None,
     chunk_samples: int = 1 << 16,
+    whole_take: bool = True,
 ) -> NDArray[np.float64]:
     """Offline processing: the streaming engine with its latency trimmed.
 
     ``x`` is ``(channels, samples)``; the result is ``(output_channels, samples)``,
     sample-aligned with ``x``. ``progress`` is called with the number of input samples done.
+    With ``whole_take`` a first pass (:func:`analyse_take`) starts the statistics from the
+    whole take; without it the result is what a host gets from the plugin with the same
+    settings (the look-ahead alone).
     """
     settings = settings or Settings()
     x = np.asarray(x, dtype=float)
     if x.ndim != 2:
         raise ValueError(f"expected (channels, samples), got shape {x.shape}")
-    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model)
+    take = None
+    if whole_take and uses_take_analysis(settings):
+        take = analyse_take(
+            settings, sample_rate_hz, x.shape[0], iter_blocks(x, chunk_samples), noise_model
+        )
+    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model, take)
     return run_processor(proc, iter_blocks(x, chunk_samples), x.shape[1], progress)
+
+
+def uses_take_analysis(settings: Settings) -> bool:
+    """Whether a first pass can tell the engine anything (it learns no noise in learn mode,
+    and nothing at all in passthrough or bypass)."""
+    return not (
+        settings.bypass or settings.estimator == "passthrough" or settings.noise_mode == "learn"
+    )
+
+
+# ----------------------------------------------------------------- per-frame estimators
+
+
+@dataclass(frozen=True)
+class FrameBatch:
+    """Frames sharing one refresh: raw ``y`` (K, F, M), whitened ``yw``, MVDR output ``z``
+    (K, F), its power, the linear unbiased power ``p_lin = |z|^2 - sigma_r^2``, and the
+    derived values of the refresh."""
+
+    y: NDArray
+    yw: NDArray
+    z: NDArray
+    mvdr_power: NDArray
+    p_lin: NDArray
+    der: _Derived
+
+
+class PowerEstimator:
+    """One speech-power estimator for the shared post-stage.
+
+    ``derive`` runs once per refresh (heavy per-bin algebra), ``prepare`` once per batch of
+    frames (vectorised over frames and bins), and ``power`` once per frame with the
+    decision-directed prior (the only recursive part): it returns an unbiased power ``P^``
+    and its noise-equivalent power ``sigma_eq^2``, or an already-shrunk MMSE estimate with
+    ``None``. This base class is the linear MVDR + Wiener post-filter.
+    """
+
+    def derive(self, proc: Processor, cov: NDArray, lift2: NDArray, inv: NDArray,
+               g: NDArray, g_white: NDArray) -> dict:
+        return {}
+
+    def prepare(self, proc: Processor, batch: FrameBatch) -> object:
+        return batch
+
+    def power(self, prepared, k: int, prior: NDArray) -> tuple[NDArray, NDArray | None]:
+        return prepared.p_lin[k], prepared.der.residual
+
+    def phase_reference(self, batch: FrameBatch, prepared) -> NDArray:
+        return batch.z
+
+    def lifted_bins(self, der: _Derived, n_bins: int) -> NDArray:
+        """Bins that use fourth-order statistics in this refresh (for the report)."""
+        return np.zeros(n_bins, dtype=bool)
+
+
+class LinearWiener(PowerEstimator):
+    """MVDR output power minus its residual noise, then the Wiener post-stage."""
+
+
+class DelaySum(PowerEstimator):
+    """Delay-and-sum beamformer ``h = g / |g|^2`` and its output noise power."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        h = g / np.sum(np.abs(g) ** 2, axis=-1, keepdims=True)
+        return {"h_ds": h, "noise_ds": np.real(np.einsum("fi,fij,fj->f", np.conj(h), cov, h))}
+
+    def prepare(self, proc, batch):
+        lf = batch.der.lifted
+        out = np.einsum("fi,kfi->kf", np.conj(lf["h_ds"]), batch.y)
+        return out, np.abs(out) ** 2 - lf["noise_ds"], lf["noise_ds"]
+
+    def power(self, prepared, k, prior):
+        return prepared[1][k], prepared[2]
+
+    def phase_reference(self, batch, prepared):
+        return prepared[0]
+
+
+class LiftedNulls(PowerEstimator):
+    """Closed-form power nulls toward given bearings (weights from the geometry)."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        w = proc._null_w
+        return {
+            "mu_v_raw": rho(cov),
+            "null_var_noise": np.einsum("fi,fij,fj->f", w, gaussian_lift_covariance(cov), w),
+            "null_var_cross": np.einsum("fi,fij,fj->f", w, crossterm_lift_covariance(g, cov), w),
+        }
+
+    def prepare(self, proc, batch):
+        lf = batch.der.lifted
+        p = np.einsum("fd,kfd->kf", proc._null_w, lift_snapshots(batch.y) - lf["mu_v_raw"])
+        return p, lf
+
+    def power(self, prepared, k, prior):
+        p, lf = prepared
+        var = lf["null_var_noise"] + prior * lf["null_var_cross"]
+        return p[k], np.sqrt(prior**2 + np.maximum(var, 0.0)) - prior
+
+    def lifted_bins(self, der, n_bins):
+        return np.ones(n_bins, dtype=bool)
+
+
+class LiftedMinimumVariance(PowerEstimator):
+    """Lifted minimum-variance unbiased power (``lifted-mv``; ``auto`` where the noise has
+    fourth-order structure, linear elsewhere), see :meth:`Processor._lifted_mv`."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        return proc._lifted_derived(
+            cov, lift2, inv, g_white, proc._learning_start(proc._frame_index)
+        )
+
+    def prepare(self, proc, batch):
+        lf = batch.der.lifted
+        active = lf["active"]  # bins where the lift is used
+        centred = lift_snapshots(batch.yw[:, active]) - rho(np.eye(batch.y.shape[-1]))
+        # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
+        # the last column, the part of the estimate that does not depend on the prior.
+        projected = np.einsum("fij,kfj->kfi", lf["projection"], centred, optimize=True)
+        return projected[..., :-1], projected[..., -1], batch
+
+    def power(self, prepared, k, prior):
+        weighted_c, fixed_part, batch = prepared
+        lf = batch.der.lifted
+        active = lf["active"]
+        if isinstance(active, slice):  # every bin lifts
+            return Processor._lifted_mv(weighted_c[k], fixed_part[k], prior, lf)
+        p_hat = batch.p_lin[k].copy()
+        noise_eq = batch.der.residual.copy()
+        p_hat[active], noise_eq[active] = Processor._lifted_mv(
+            weighted_c[k], fixed_part[k], prior[active], lf
+        )
+        return p_hat, noise_eq
+
+    def lifted_bins(self, der, n_bins):
+        mask = np.zeros(n_bins, dtype=bool)
+        mask[der.lifted["active"]] = True
+        return mask
+
+
+class LiftedShrunk(PowerEstimator):
+    """Shrunk (MMSE-type) lifted power: lifted-wiener, -affine, -wiener-fixed."""
+
+    def derive(self, proc, cov, lift2, inv, g, g_white):
+        return LiftedMinimumVariance.derive(self, proc, cov, lift2, inv, g, g_white)
+
+    def prepare(self, proc, batch):
+        return proc, batch
+
+    def power(self, prepared, k, prior):
+        proc, batch = prepared
+        return proc._lifted_mmse(batch.yw[k], prior, batch.der, batch.mvdr_power[k]), None
+
+    def lifted_bins(self, der, n_bins):
+        return np.ones(n_bins, dtype=bool)
+
+
+# The post-staged estimators by identifier; mvdr and passthrough skip the post-stage.
+ESTIMATOR_OBJECTS: dict[str, PowerEstimator] = {
+    "auto": LiftedMinimumVariance(),
+    "lifted-mv": LiftedMinimumVariance(),
+    "lifted-wiener": LiftedShrunk(),
+    "lifted-affine": LiftedShrunk(),
+    "lifted-wiener-fixed": LiftedShrunk(),
+    "lifted-nulls": LiftedNulls(),
+    "linear-wiener": LinearWiener(),
+    "delay-sum": DelaySum(),
+}
+
+
+def analyse_take(
+    settings: Settings,
+    sample_rate_hz: float,
+    n_channels: int,
+    blocks,
+    noise_model: NoiseModel | None = None,
+    progress: Callable[[int], None] | None = None,
+) -> TakeStatistics:
+    """First pass over a whole take: the statistics stage alone, summing over every frame.
+
+    The same tracker as :class:`Processor` (causal, no estimators, no synthesis) finds the
+    speech presence; the noise moments of every pause and the speech moments of every
+    speech frame are summed without forgetting. Memory does not grow with the take.
+    """
+    analysis = settings.replace(estimator="linear-wiener", lookahead_s=0.0, bypass=False)
+    proc = Processor(analysis, sample_rate_hz, n_channels, noise_model)
+    f = proc.config.n_bins
+    if noise_model is None:  # the linear tracker needs no fourth-order running sums
+        proc._noise = MomentAccumulator(f, proc.n_channels, with_lift=False)
+    # The take's fourth-order noise sums seed only a tracker that starts without a model.
+    seeds_noise = noise_model is None and settings.noise_mode == "track"
+    proc._take_noise = MomentAccumulator(f, proc.n_channels, with_lift=seeds_noise)
+    proc._take_speech = MomentAccumulator(f, proc.n_channels, with_lift=False)
+    done = 0
+    for block in blocks:
+        proc.push(block)
+        done += block.shape[1]
+        if progress is not None:
+            progress(done)
+    cfg = proc.config
+    noise, speech = proc._take_noise, proc._take_speech
+    cov, lift2 = noise.means()
+    if lift2 is None:  # not gathered (a model holds the noise): the Gaussian moments stand in
+        mean = rho(cov)
+        lift2 = gaussian_lift_covariance(cov) + mean[:, :, None] * mean[:, None, :]
+    speech_cov, _ = speech.means()
+    frames = max(proc._take_frames, 1)
+    model = NoiseModel(
+        covariance=cov, lift_second_moment=lift2,
+        frames=float(np.median(noise.effective_frames())),
+        sample_rate_hz=cfg.sample_rate_hz, frame_length=cfg.frame_length, hop=cfg.hop,
+        n_channels=proc.n_channels, description="the take's own speech pauses",
+    )
+    return TakeStatistics(
+        noise=model, speech_covariance=speech_cov, noise_share=noise.weight / frames,
+        speech_share=speech.weight / frames, frames=proc._take_frames,
+    )
 
 
 def iter_blocks(x: NDArray, chunk_samples: int):
@@ -860,6 +1193,7 @@ def run_processor(
         done += block.shape[1]
         if progress is not None:
             progress(done)
+    proc.end_of_input()
     remaining = proc.latency_samples
     while remaining > 0:  # flush the tail with silence
         n = min(1 << 15, remaining)

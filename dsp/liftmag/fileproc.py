@@ -17,7 +17,13 @@ from pathlib import Path
 import numpy as np
 
 from liftmag import __version__, audio_io, riffchunks, tracks
-from liftmag.engine import NoiseLearner, Processor, run_processor
+from liftmag.engine import (
+    NoiseLearner,
+    Processor,
+    analyse_take,
+    run_processor,
+    uses_take_analysis,
+)
 from liftmag.noise import NoiseModel
 from liftmag.settings import Settings
 
@@ -155,6 +161,7 @@ def process_file(
     progress: Callable[[int, int], None] | None = None,
     mics: Sequence[str] = (),
     same_tracks: bool = False,
+    whole_take: bool = True,
 ) -> ProcessResult:
     """Clean one take (a multichannel file or a group of mono stems) into ``output``.
 
@@ -162,7 +169,11 @@ def process_file(
     and subtype; ``bext``/``iXML`` chunks of a WAV input are carried over. It is written to
     a temporary file and renamed, so an interrupted run leaves nothing behind; an existing
     output is refused unless ``force``. ``progress(done_frames, total_frames)`` is called as
-    blocks complete.
+    blocks complete (over both passes).
+
+    With ``whole_take`` the take is read twice: a first pass learns its noise (from every
+    speech pause, unless a model is given) and its talker, so the engine starts warm
+    (:func:`liftmag.engine.analyse_take`); without it the output is the plugin's.
 
     ``mics`` chooses the array's microphones (1-based numbers or iXML track names, see
     :func:`liftmag.tracks.choose_mics`); ``settings.reference_channel`` then counts
@@ -199,6 +210,19 @@ def process_file(
             f"{min_frames / fs:.3f} s (a few STFT frames) to tell speech from noise"
         )
     total = source.frames
+    passes = 1
+    if whole_take and uses_take_analysis(settings):
+        passes = 2
+        take_stats = analyse_take(
+            settings, fs, len(take.mics), _mic_blocks(source, take.mics), noise_model,
+            progress=(lambda done: progress(done // 2, total)) if progress else None,
+        )
+        if noise_model is None and settings.noise_mode == "track":
+            noise_desc = (
+                f"learned from the take's own speech pauses ({take_stats.pause_duration_s:.1f} "
+                "s), then tracked"
+            )
+        proc = Processor(settings, fs, len(take.mics), noise_model, take_stats)
     out_tracks = tracks.output_tracks(take.tracks, take.mics, take.reference, take.mode)
     writer = audio_io.AtomicAudioWriter(
         output, like=source, channels=len(out_tracks), subtype=subtype, force=force,
@@ -206,18 +230,21 @@ def process_file(
     )
     writer.use_chunks(_output_chunks(take, out_tracks, fs, writer.subtype, settings))
     with writer:
-        blocks = audio_io.read_blocks(source, BLOCK_FRAMES)
         sink = writer.write
         if same_tracks:
             merger = _TrackMerger(take.mics[take.reference], writer.write)
-            blocks, sink = merger.feed(blocks, take.mics), merger.write
-        elif take.mics != tuple(range(source.channels)):
-            blocks = (block[list(take.mics)] for block in blocks)
+            blocks = merger.feed(audio_io.read_blocks(source, BLOCK_FRAMES), take.mics)
+            sink = merger.write
+        else:
+            blocks = _mic_blocks(source, take.mics)
         run_processor(
             proc,
             blocks,
             total,
-            progress=(lambda done: progress(done, total)) if progress else None,
+            progress=(
+                (lambda done: progress(((passes - 1) * total + done) // passes, total))
+                if progress else None
+            ),
             sink=sink,
         )
     report = writer.report
@@ -244,6 +271,14 @@ def process_file(
         carried_chunks=tuple(report.carried_chunks), warnings=tuple(warnings),
         mics=tuple(take.tracks[i].label for i in take.mics),
     )
+
+
+def _mic_blocks(source, mics: tuple[int, ...]):
+    """The take's blocks, holding only the array's microphones in their chosen order."""
+    blocks = audio_io.read_blocks(source, BLOCK_FRAMES)
+    if mics == tuple(range(source.channels)):
+        return blocks
+    return (block[list(mics)] for block in blocks)
 
 
 def _geometry(fs: int, settings: Settings) -> tuple[int, int]:

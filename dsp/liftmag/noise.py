@@ -143,6 +143,8 @@ class MomentAccumulator:
         self.weight = np.zeros(n_bins)
         self.weight_sq = np.zeros(n_bins)
         self.version = 0  # bumped by every change, so derived values can be cached
+        # A fixed prior (whole-take means) that never decays: (first, sum, weight) or None.
+        self.prior: tuple[NDArray, NDArray | None, NDArray] | None = None
 
     def update(
         self,
@@ -179,22 +181,52 @@ class MomentAccumulator:
 
     def seed(self, model: NoiseModel) -> None:
         """Start from a model, counting it as ``model.frames`` frames of evidence."""
-        n = model.frames
-        self.lift_first = rho(model.covariance) * n
-        if self.lift_sum is not None:
-            self.lift_sum = model.lift_second_moment * n
-        self.weight = np.full(self.weight.shape, n)
-        self.weight_sq = np.full(self.weight.shape, n)
+        self.seed_moments(model.covariance, model.lift_second_moment, model.frames)
+
+    def seed_moments(
+        self, covariance: NDArray, lift_second_moment: NDArray | None, frames: NDArray | float
+    ) -> None:
+        """Start from mean moments, counting them as ``frames`` (per bin or one number)."""
+        n = np.broadcast_to(np.asarray(frames, dtype=float), self.weight.shape)
+        self.lift_first = rho(covariance) * n[:, None]
+        if self.lift_sum is not None and lift_second_moment is not None:
+            self.lift_sum = lift_second_moment * n[:, None, None]
+        self.weight = n.copy()
+        self.weight_sq = n.copy()
+        self.version += 1
+
+    def set_prior(
+        self, covariance: NDArray, lift_second_moment: NDArray | None, frames: NDArray | float
+    ) -> None:
+        """Add fixed mean moments worth ``frames`` to every later mean (they never decay)."""
+        n = np.broadcast_to(np.asarray(frames, dtype=float), self.weight.shape).copy()
+        lift = None
+        if self.lift_sum is not None and lift_second_moment is not None:
+            lift = lift_second_moment * n[:, None, None]
+        self.prior = (rho(covariance) * n[:, None], lift, n)
         self.version += 1
 
     def means(self) -> tuple[NDArray[np.complex128], NDArray[np.float64] | None]:
-        w = np.maximum(self.weight, 1e-300)
-        cov = unrho(self.lift_first / w[:, None])
-        lift = None if self.lift_sum is None else self.lift_sum / w[:, None, None]
+        first, total, weight = self.lift_first, self.lift_sum, self.weight
+        if self.prior is not None:
+            first = first + self.prior[0]
+            weight = weight + self.prior[2]
+            if total is not None and self.prior[1] is not None:
+                total = total + self.prior[1]
+        w = np.maximum(weight, 1e-300)
+        cov = unrho(first / w[:, None])
+        lift = None if total is None else total / w[:, None, None]
         return cov, lift
 
+    def total_weight(self) -> NDArray[np.float64]:
+        """Weight behind :meth:`means`, the prior included."""
+        return self.weight if self.prior is None else self.weight + self.prior[2]
+
     def effective_frames(self) -> NDArray[np.float64]:
-        return self.weight**2 / np.maximum(self.weight_sq, 1e-300)
+        if self.prior is None:
+            return self.weight**2 / np.maximum(self.weight_sq, 1e-300)
+        w = self.weight + self.prior[2]
+        return w**2 / np.maximum(self.weight_sq + self.prior[2], 1e-300)
 
 
 def lift_whitening(whitener: NDArray[np.complex128]) -> NDArray[np.float64]:

@@ -88,7 +88,7 @@ class Settings:
         ),
     )
     reduction_limit_db: float = field(
-        default=18.0,
+        default=24.0,
         metadata=_meta(
             "deepest reduction applied to any bin; lower keeps more room sound",
             unit="dB", minimum=0.0, maximum=40.0, lv2_port=True, lv2_label="Reduction limit",
@@ -153,6 +153,13 @@ class Settings:
     noise_memory_s: float = field(
         default=3.0,
         metadata=_meta("memory of the noise tracker", unit="s", minimum=0.2, maximum=600.0),
+    )
+    lookahead_s: float = field(
+        default=3.0,
+        metadata=_meta(
+            "future the statistics see before a frame is cleaned (added to the latency); "
+            "0 = causal", unit="s", minimum=0.0, maximum=10.0,
+        ),
     )
     smoothing: float = field(
         default=0.98,

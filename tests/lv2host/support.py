@@ -277,12 +277,17 @@ def reported_latency(bundle_dir: Path, uri: str, rate: int, env: dict[str, str],
 
 
 def cli_process(x: np.ndarray, fs: int, workdir: Path, *options: str) -> np.ndarray:
-    """``liftmag process`` on ``x`` (channels, n) as a 32-bit float WAV: (channels, n)."""
+    """``liftmag process --one-pass`` on ``x`` (channels, n) as a 32-bit float WAV.
+
+    ``--one-pass``: a plugin cannot read the take before it plays, so the CLI output it must
+    equal is the one without the whole-take first pass (same look-ahead, same settings).
+    """
     import soundfile as sf
 
     src, dst = workdir / "cli-in.wav", workdir / "cli-out.wav"
     sf.write(src, np.asarray(x, dtype=np.float32).T, fs, subtype="FLOAT")
-    proc = subprocess.run([str(LIFTMAG_CLI), "process", str(src), "-o", str(dst), *options],
+    proc = subprocess.run([str(LIFTMAG_CLI), "process", str(src), "-o", str(dst), "--one-pass",
+                           *options],
                           capture_output=True, text=True, timeout=600)
     if proc.returncode != 0:
         raise AssertionError(f"liftmag process failed ({proc.returncode}): {proc.stderr}")

@@ -42,6 +42,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--subtype", help="output subtype, e.g. PCM_24 or FLOAT (default: input's)")
     parser.add_argument("--force", action="store_true", help="replace an existing output")
     parser.add_argument("--json", action="store_true", help="print a JSON summary on stdout")
+    parser.add_argument(
+        "--one-pass", action="store_true",
+        help="skip the first pass over the whole take (its noise pauses and talker); the "
+             "output then equals the LV2 plugin's with the same settings, delayed by its "
+             "reported latency",
+    )
     add_mics_argument(parser)
     add_settings_arguments(parser)
     offer_file_output_modes(parser)
@@ -103,6 +109,7 @@ def run(args: argparse.Namespace) -> int:
         result = process_file(
             args.inputs, out, settings, noise_model=model, noise_regions_s=args.noise_region,
             force=args.force, subtype=args.subtype, mics=mics, same_tracks=same_tracks,
+            whole_take=not args.one_pass,
             progress=progress_bar("cleaning", source.frames, source.sample_rate_hz),
         )
     except (AudioInputError, AudioOutputError, ValueError) as exc:
