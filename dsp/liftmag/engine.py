@@ -180,25 +180,39 @@ def _presence_smoothing_matrix(n_frames: int) -> tuple[NDArray, NDArray]:
     return gains, 0.9 ** (k + 1.0)
 
 
-def _chol_inverse(phi: NDArray, loading: float) -> tuple[NDArray, NDArray]:
-    """Cholesky factor ``L`` of the loaded covariance and its inverse, per bin."""
+def _root_inverse(phi: NDArray, loading: float) -> tuple[NDArray, NDArray]:
+    """Hermitian square root ``R`` of the loaded covariance (``R R^H = R^2``) and ``R^-1``.
+
+    The symmetric root, not a Cholesky factor: a Cholesky factor depends on the order of the
+    microphones, and the tracker reuses lifted noise structure found under an earlier whitener
+    with a later one, so a triangular whitener made outputs depend on the channel order
+    (measured: 0.05 peak on a 20 s take with the channels swapped). ``R`` follows any
+    permutation of the channels, so the outputs do too.
+    """
     m = phi.shape[-1]
     scale = np.real(np.trace(phi, axis1=-2, axis2=-1)) / m
     scale = np.maximum(scale, ABSOLUTE_POWER_FLOOR)
     loaded = phi + (loading * scale + ABSOLUTE_POWER_FLOOR)[:, None, None] * np.eye(m)
     if m != 2:
-        chol = np.linalg.cholesky(loaded)
-        return chol, np.linalg.inv(chol)
-    # Two microphones: the closed form of [[a, b], [b*, d]] = L L^H (LAPACK's per-matrix
-    # overhead would dominate), L = [[sqrt(a), 0], [b*/sqrt(a), sqrt(d - |b|^2/a)]].
-    l00 = np.sqrt(loaded[:, 0, 0].real)
-    l10 = np.conj(loaded[:, 0, 1]) / l00
-    l11 = np.sqrt(np.maximum(loaded[:, 1, 1].real - np.abs(l10) ** 2, ABSOLUTE_POWER_FLOOR))
-    chol = np.zeros_like(loaded)
-    inv = np.zeros_like(loaded)
-    chol[:, 0, 0], chol[:, 1, 0], chol[:, 1, 1] = l00, l10, l11
-    inv[:, 0, 0], inv[:, 1, 0], inv[:, 1, 1] = 1 / l00, -l10 / (l00 * l11), 1 / l11
-    return chol, inv
+        lam, vec = np.linalg.eigh(loaded)
+        lam = np.maximum(lam, ABSOLUTE_POWER_FLOOR)
+        root = (vec * np.sqrt(lam)[:, None, :]) @ vec.conj().swapaxes(-1, -2)
+        inv = (vec / np.sqrt(lam)[:, None, :]) @ vec.conj().swapaxes(-1, -2)
+        return root, inv
+    # Two microphones: the closed form sqrt(A) = (A + s I) / t, s = sqrt(det A),
+    # t = sqrt(tr A + 2 s) (Cayley-Hamilton for 2 x 2 matrices; LAPACK's per-matrix overhead
+    # would dominate), and its inverse (adj(A) + s I) / (s t).
+    a, d = loaded[:, 0, 0].real, loaded[:, 1, 1].real
+    det = np.maximum(a * d - np.abs(loaded[:, 0, 1]) ** 2, ABSOLUTE_POWER_FLOOR**2)
+    s = np.sqrt(det)
+    tt = np.sqrt(a + d + 2 * s)
+    eye = np.eye(2)
+    root = (loaded + s[:, None, None] * eye) / tt[:, None, None]
+    adj = np.empty_like(loaded)
+    adj[:, 0, 0], adj[:, 1, 1] = d, a
+    adj[:, 0, 1], adj[:, 1, 0] = -loaded[:, 0, 1], -loaded[:, 1, 0]
+    inv = (adj + s[:, None, None] * eye) / (s * tt)[:, None, None]
+    return root, inv
 
 
 def _principal_eigenpair(h: NDArray) -> tuple[NDArray, NDArray]:
@@ -710,7 +724,7 @@ class Processor:
         if self._noise.weight.max() == 0:  # nothing learned yet: unit noise
             cov = np.broadcast_to(np.eye(m), (f, m, m)).astype(complex)
             lift2 = gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
-        chol, inv = _chol_inverse(cov, s.diagonal_loading)
+        chol, inv = _root_inverse(cov, s.diagonal_loading)
         fallback = np.ones((f, m), dtype=complex)
         if self._geometry_g is not None:
             g = self._geometry_g
@@ -1270,7 +1284,7 @@ def model_weights_at_bin(
     settings = settings or Settings()
     cov = model.covariance[bin_index : bin_index + 1]
     lift2 = model.lift_second_moment[bin_index : bin_index + 1]
-    _, inv = _chol_inverse(cov, settings.diagonal_loading)
+    _, inv = _root_inverse(cov, settings.diagonal_loading)
     g = np.asarray(g, dtype=complex)[None]
     gw = np.einsum("fij,fj->fi", inv, g)
     h_white = gw / np.sum(np.abs(gw) ** 2, axis=-1, keepdims=True)
