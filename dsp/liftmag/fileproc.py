@@ -181,8 +181,12 @@ def process_file(
             f"{min_frames / fs:.3f} s (a few STFT frames) to tell speech from noise"
         )
     total = source.frames
+    container, container_subtype, container_note = audio_io.output_container(output, source)
+    if container_note and subtype is None:
+        warnings.append("output format: " + container_note)
     with audio_io.AtomicAudioWriter(
-        output, like=source, channels=proc.n_output_channels, subtype=subtype, force=force
+        output, like=source, channels=proc.n_output_channels, format=container,
+        subtype=subtype or container_subtype, force=force,
     ) as writer:
         run_processor(
             proc,
