@@ -14,7 +14,8 @@ HELP = (
     "Clean many takes with one command: files, folders (searched recursively) and globs, "
     "or a CSV manifest with one row per take. Outputs mirror the input tree under --out, "
     "keep each input's format, and are written atomically; originals are only read. "
-    "A log of every take (JSON lines) is kept in DIR/liftmag-batch.jsonl. Running the "
+    "A log of every take (JSON lines) is kept in DIR/liftmag-batch.jsonl, and what made "
+    "each output in DIR/.liftmag-batch/ (nothing hidden sits beside the outputs). Running the "
     "same command again skips takes whose output was made from the same input bytes, "
     "settings, noise model and liftmag version (--redo forces them); Ctrl-C stops "
     "cleanly and leaves no partial files. Mono stems of one take are grouped by a "
@@ -82,7 +83,10 @@ def run(args: argparse.Namespace) -> int:
     }
     try:
         _check_request(args, base_values)
-        plans = batch.check_outputs(_plans(args, out_dir))
+        plans = batch.check_outputs(
+            _plans(args, out_dir), protected=[*(args.room_tone or ()), *filter(None, [
+                args.noise_model])],
+        )
         resolver = batch.NoiseResolver(out_dir / batch.STATE_DIR_NAME)
         batch_noise = _batch_noise(args, resolver, base_values)
         jobs, refused = batch.build_jobs(
