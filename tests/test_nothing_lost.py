@@ -277,3 +277,118 @@ def test_sigterm_and_sighup_to_process_leave_no_partial(tmp_path, scene, signum)
     assert proc.returncode == 128 + signum, err
     assert partials(tmp_path) == [] and not (out / "clean.wav").exists()
     assert "no partial output" in err
+
+
+# ------------------------------------------------------------ degenerate noise data
+
+
+def _model_file(path: Path, model, **meta_changes) -> Path:
+    """Save ``model`` with some metadata fields replaced (None removes the field)."""
+    import io
+    import json
+
+    with np.load(io.BytesIO(model.to_bytes())) as archive:
+        arrays = {k: archive[k] for k in archive.files}
+    meta = json.loads(arrays["metadata"].tobytes().decode())
+    for key, value in meta_changes.items():
+        if value is None:
+            meta.pop(key, None)
+        else:
+            meta[key] = value
+    arrays["metadata"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
+    np.savez(path, **arrays)
+    return path
+
+
+@pytest.fixture(scope="module")
+def learned(scene):
+    from liftmag.fileproc import learn_noise
+    from liftmag.settings import Settings
+
+    return learn_noise(_source_of(scene), Settings(), ())
+
+
+def _source_of(scene):
+    import tempfile
+
+    folder = Path(tempfile.mkdtemp(prefix="liftmag-tone-"))
+    sf.write(folder / "tone.wav", scene.room_tone.T, FS, subtype="PCM_24")
+    return audio_io.probe(folder / "tone.wav")
+
+
+@pytest.mark.parametrize(
+    ("changes", "words"),
+    [({"hop": None}, "hop"), ({"frames": "many"}, "frames"), ({"frames": 0}, "frames"),
+     ({"sample_rate_hz": -16000}, "sample_rate_hz"), ({"n_channels": 3}, "channel"),
+     ({"frame_length": 0}, "frame")],
+)
+def test_model_with_the_right_tag_but_bad_metadata_is_one_line(
+    tmp_path, capsys, take, learned, changes, words
+):
+    model = _model_file(tmp_path / "m.npz", learned, **changes)
+    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav", "--noise-model",
+                         model)
+    assert rc == 2 and one_line_error(err) and words in err, err
+    assert not (tmp_path / "o.wav").exists()
+
+
+def test_all_zero_model_and_silent_room_tone_are_refused(tmp_path, capsys, take, learned):
+    import dataclasses
+
+    silent = dataclasses.replace(
+        learned, covariance=np.zeros_like(learned.covariance),
+        lift_second_moment=np.zeros_like(learned.lift_second_moment),
+    )
+    (tmp_path / "zero.npz").write_bytes(silent.to_bytes())
+    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav", "--noise-model",
+                         tmp_path / "zero.npz")
+    assert rc == 2 and one_line_error(err) and "silent" in err, err
+    tone = tmp_path / "zeros.wav"
+    sf.write(tone, np.zeros((5 * FS, 2)), FS, subtype="PCM_16")  # digital silence
+    rc, _, err = run_cli(capsys, "learn", tone, "-o", tmp_path / "m.npz")
+    assert rc == 2 and one_line_error(err) and "silent" in err
+    assert not (tmp_path / "m.npz").exists()
+
+
+def test_a_region_given_three_times_counts_once(scene):
+    from liftmag.fileproc import learn_noise
+    from liftmag.settings import Settings
+
+    source = _source_of(scene)
+    once = learn_noise(source, Settings(), [(0.5, 3.0)])
+    thrice = learn_noise(source, Settings(), [(0.5, 3.0)] * 3)
+    overlapping = learn_noise(source, Settings(), [(0.5, 2.0), (1.0, 3.0)])
+    assert thrice.frames == once.frames == overlapping.frames
+    np.testing.assert_allclose(thrice.covariance, once.covariance)
+
+
+def test_a_dead_microphone_is_warned_about(tmp_path, capsys, scene):
+    take = tmp_path / "dead.wav"
+    data = scene.mixture[:, : 4 * FS].T.copy()
+    data[:, 1] = 0.0  # capsule 2 unplugged: digital silence
+    sf.write(take, data, FS, subtype="PCM_16")
+    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav")
+    assert rc == 0
+    assert "channel 2" in err and "silent" in err
+
+
+# ------------------------------------------------------------ other verbs, one line each
+
+
+def test_demo_refuses_nan_snr_and_force_never_deletes_foreign_files(tmp_path, capsys):
+    rc, _, err = run_cli(capsys, "demo", "--out", tmp_path / "d", "--snr-db", "nan")
+    assert rc == 2 and one_line_error(err) and not (tmp_path / "d").exists()
+    folder = tmp_path / "mine"
+    folder.mkdir()
+    (folder / "thesis.txt").write_text("years of work")
+    rc, _, err = run_cli(capsys, "demo", "--out", folder, "--force")
+    assert rc == 2 and one_line_error(err) and "thesis.txt" in err
+    assert (folder / "thesis.txt").read_text() == "years of work"
+
+
+@pytest.mark.parametrize(("out", "words"), [("missing/p.png", "does not exist"),
+                                            ("p.wav", "extension")])
+def test_pattern_out_missing_folder_or_non_image_is_one_line(tmp_path, capsys, out, words):
+    rc, _, err = run_cli(capsys, "pattern", "--out", tmp_path / out)
+    assert rc == 2 and one_line_error(err) and words in err, err
+    assert list(tmp_path.iterdir()) == []

@@ -22,6 +22,9 @@ from liftmag.settings import Settings
 
 BLOCK_FRAMES = 1 << 16
 MIN_FRAMES_OF_AUDIO = 4  # STFT frames a take must span to be worth processing
+# A channel whose peak stays below -120 dBFS holds no microphone signal: a live capsule's
+# self-noise through any preamp sits far above that (common practice; 24-bit LSB -138 dBFS).
+DEAD_CHANNEL_PEAK = 1e-6
 
 
 @dataclass(frozen=True)
@@ -126,7 +129,7 @@ def learn_noise(
                     f"({source.duration_s:.3f} s long)"
                 )
             regions.append((round(start_s * fs), round(end_s * fs)))
-    for lo, hi in regions:
+    for lo, hi in merge_regions(regions):
         learner.add_segment(_region_blocks(source, lo, hi))
     if learner.frames < 2 * source.channels**2:
         raise audio_io.AudioInputError(
@@ -134,7 +137,26 @@ def learn_noise(
             f" s of usable noise (each region must be longer than {frame_s:.3f} s; a few "
             f"seconds at least, 30 s is ordinary location practice)"
         )
-    return learner.model(description)
+    model = learner.model(description)
+    silent = model.silent_channels()
+    if silent:
+        raise audio_io.AudioInputError(
+            "the room tone is silent on channel(s) " + ", ".join(str(c + 1) for c in silent)
+            + " (digital silence: a dead or unplugged microphone?); record the room with "
+            "every microphone live"
+        )
+    return model
+
+
+def merge_regions(regions: Sequence[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Sorted, non-overlapping frame ranges: a stretch given twice is learned from once."""
+    merged: list[tuple[int, int]] = []
+    for lo, hi in sorted(regions):
+        if merged and lo <= merged[-1][1]:
+            merged[-1] = (merged[-1][0], max(merged[-1][1], hi))
+        else:
+            merged.append((lo, hi))
+    return merged
 
 
 def process_file(
@@ -184,18 +206,27 @@ def process_file(
     container, container_subtype, container_note = audio_io.output_container(output, source)
     if container_note and subtype is None:
         warnings.append("output format: " + container_note)
+    peaks = np.zeros(source.channels)
     with audio_io.AtomicAudioWriter(
         output, like=source, channels=proc.n_output_channels, format=container,
         subtype=subtype or container_subtype, force=force,
     ) as writer:
         run_processor(
             proc,
-            audio_io.read_blocks(source, BLOCK_FRAMES),
+            _track_peaks(audio_io.read_blocks(source, BLOCK_FRAMES), peaks),
             total,
             progress=(lambda done: progress(done, total)) if progress else None,
             sink=writer.write,
         )
     report = writer.report
+    dead = np.flatnonzero(peaks < DEAD_CHANNEL_PEAK)
+    if dead.size:
+        which = ", ".join(str(c + 1) for c in dead)
+        warnings.append(
+            (f"channel {which} is" if dead.size == 1 else f"channels {which} are")
+            + " silent throughout (a dead or unplugged microphone?): the estimators need "
+            "every microphone live, so this output is not a proper clean-up; leave it out"
+        )
     if report.clipped_samples:
         warnings.append(
             f"{report.clipped_samples} samples exceeded full scale (peak "
@@ -218,6 +249,12 @@ def process_file(
         clipped_samples=report.clipped_samples, peak_dbfs=report.peak_dbfs,
         carried_chunks=tuple(report.carried_chunks), warnings=tuple(warnings),
     )
+
+
+def _track_peaks(blocks: Iterator[np.ndarray], peaks: np.ndarray) -> Iterator[np.ndarray]:
+    for block in blocks:
+        np.maximum(peaks, np.abs(block).max(axis=1, initial=0.0), out=peaks)
+        yield block
 
 
 def _geometry(fs: int, settings: Settings) -> tuple[int, int]:
