@@ -392,3 +392,39 @@ def test_pattern_out_missing_folder_or_non_image_is_one_line(tmp_path, capsys, o
     rc, _, err = run_cli(capsys, "pattern", "--out", tmp_path / out)
     assert rc == 2 and one_line_error(err) and words in err, err
     assert list(tmp_path.iterdir()) == []
+
+
+# ------------------------------------------------------------ unusual RIFF size fields
+
+
+def _bwf_with_riff_size(path: Path, scene, riff_size: int, data_size: int | None = None):
+    """A BWF (EBU Tech 3285 bext before data) whose RIFF size field reads ``riff_size``."""
+    import struct
+
+    sf.write(path, scene.mixture[:, : 3 * FS].T, FS, subtype="PCM_16")
+    raw = path.read_bytes()
+    data_at = raw.index(b"data", 12)
+    bext = b"Scene 4 take 2".ljust(602, b"\0") + b"A=PCM,F=16000,W=16\r\n"
+    bext_chunk = b"bext" + struct.pack("<I", len(bext)) + bext
+    out = bytearray(raw[:data_at] + bext_chunk + raw[data_at:])
+    struct.pack_into("<I", out, 4, riff_size)
+    if data_size is not None:
+        struct.pack_into("<I", out, data_at + len(bext_chunk) + 4, data_size)
+    path.write_bytes(bytes(out))
+    return bext
+
+
+@pytest.mark.parametrize(("riff_size", "data_size"),
+                         [(0xFFFFFFFF, None), (0, None), (0xFFFFFFFF, 0xFFFFFFFF)])
+def test_streaming_writers_size_fields_are_read_in_full_and_chunks_carried(
+    tmp_path, capsys, scene, riff_size, data_size
+):
+    take = tmp_path / "streamed.wav"
+    bext = _bwf_with_riff_size(take, scene, riff_size, data_size)
+    assert sf.info(str(take)).frames == 3 * FS  # libsndfile reads the audio in full
+    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav")
+    assert rc == 0, err
+    from liftmag import riffchunks
+
+    assert riffchunks.read_bext(tmp_path / "o.wav") == bext
+    assert sf.info(str(tmp_path / "o.wav")).frames == 3 * FS

@@ -812,10 +812,41 @@ def _chunks_from(path: Path) -> tuple[tuple[str, bytes], ...]:
     try:
         return riffchunks.chunks_to_carry(path)
     except ValueError as exc:
+        found = _chunks_ignoring_riff_size(path)
+        if found is not None:
+            return found
         raise AudioInputError(
-            f"cannot carry the bext/iXML chunks of {path}: {exc} "
-            "(write without carrying chunks to go on)"
+            f"{path}: the audio reads in full, but the chunk list around it is damaged "
+            f"({exc}), so its bext/iXML metadata cannot be carried; re-export the file"
         ) from exc
+
+
+def _chunks_ignoring_riff_size(path: Path) -> tuple[tuple[str, bytes], ...] | None:
+    """Carried chunks of a RIFF WAVE whose RIFF size field is unusual, or None if damaged.
+
+    Streaming writers leave the RIFF size (and sometimes the data size) at 0 or 0xFFFFFFFF
+    because they cannot go back and fill it in; libsndfile then reads to the end of the file.
+    The chunks are walked to the end of the file instead (RIFF 1.0 layout); a data chunk of
+    unknown size runs to the end, so only chunks before it can be found.
+    """
+    found: dict[str, bytes] = {}
+    with open(path, "rb") as fh:
+        size = os.fstat(fh.fileno()).st_size
+        if fh.read(12)[:4] != b"RIFF":
+            return None
+        offset = 12
+        while offset + 8 <= size:
+            fh.seek(offset)
+            chunk_id, chunk_size = struct.unpack("<4sI", fh.read(8))
+            if chunk_id == b"data" and chunk_size in _UNKNOWN_SIZES:
+                break
+            if offset + 8 + chunk_size > size:
+                return None
+            name = chunk_id.decode("latin-1")
+            if name in riffchunks.CARRIED_CHUNK_IDS and name not in found:
+                found[name] = fh.read(chunk_size)
+            offset += 8 + chunk_size + (chunk_size & 1)
+    return tuple((cid, found[cid]) for cid in riffchunks.CARRIED_CHUNK_IDS if cid in found)
 
 
 def temp_prefix(destination: PathLike) -> str:
