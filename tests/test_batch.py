@@ -441,9 +441,9 @@ def _signal_part_way(proc: subprocess.Popen, out: Path, n: int, signum: int) -> 
 def test_sigint_part_way_leaves_no_partials_and_a_rerun_finishes(tmp_path, scene, signum):
     # SIGINT is what Ctrl-C delivers, SIGTERM what `kill PID` sends, SIGHUP a closed
     # terminal (POSIX); the batch stops the same way for each.
-    src, out, n = tmp_path / "in", tmp_path / "out", 14
+    src, out, n = tmp_path / "in", tmp_path / "out", 8
     for i in range(n):
-        write_take(src / f"t{i:02d}.wav", scene, 0.5 * i)
+        write_take(src / f"t{i:02d}.wav", scene, 0.5 * i, seconds=2.0)
     proc = _start_batch(src, out, jobs=1)
     _signal_part_way(proc, out, n, signum)
     stdout, _ = proc.communicate(timeout=60)
