@@ -1129,27 +1129,6 @@ class BatchOptions:
     subtype: str | None = None
 
 
-@contextlib.contextmanager
-def _sigterm_as_interrupt() -> Iterator[None]:
-    """``kill PID`` (SIGTERM) and a closed terminal (SIGHUP) stop the batch like Ctrl-C
-    does: workers stopped, no partial files. A signal we were started with ignored
-    (``nohup`` ignores SIGHUP) stays ignored."""
-    import threading
-
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-    previous = {}
-    for signum in (signal.SIGTERM, signal.SIGHUP):
-        if signum == signal.SIGTERM or signal.getsignal(signum) == signal.SIG_DFL:
-            previous[signum] = signal.signal(signum, _raise_interrupt)
-    try:
-        yield
-    finally:
-        for signum, handler in previous.items():
-            signal.signal(signum, handler)
-
-
 def run_batch(
     jobs: Sequence[Job],
     refused: Sequence[TakeRecord],
@@ -1160,8 +1139,9 @@ def run_batch(
 ) -> BatchOutcome:
     """Run the jobs, log every outcome, and return the outcome.
 
-    On interruption (Ctrl-C / SIGTERM) the workers are stopped, every temporary file of
-    this batch's outputs is removed, and the outcome so far comes back marked
+    On interruption (``KeyboardInterrupt``: Ctrl-C, or SIGTERM/SIGHUP where the caller
+    turns them into it, as ``liftmag batch`` does) the workers are stopped, every temporary
+    file of this batch's outputs is removed, and the outcome so far comes back marked
     ``interrupted``; takes not reached count as not run.
     """
     started = time.perf_counter()
@@ -1180,7 +1160,7 @@ def run_batch(
         log.write("note", text=text)
         on_note(text)
 
-    with batch_lock(out_dir), _sigterm_as_interrupt():
+    with batch_lock(out_dir):
         sweep_partials(outputs)  # left by a run whose workers were killed
         log.write(
             "start", liftmag=__version__, takes=len(jobs) + len(refused),

@@ -8,7 +8,12 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from liftmag.commands.common import CAUTION, add_settings_arguments, print_json
+from liftmag.commands.common import (
+    CAUTION,
+    add_settings_arguments,
+    print_json,
+    stop_signals_as_interrupt,
+)
 
 HELP = (
     "Clean many takes with one command: files, folders (searched recursively) and globs, "
@@ -97,7 +102,8 @@ def run(args: argparse.Namespace) -> int:
             out_dir=out_dir, n_workers=n_workers, cluster=args.cluster, redo=args.redo,
             subtype=args.subtype,
         )
-        with _progress(len(jobs) + len(refused)) as on_record:
+        # `kill` (SIGTERM) and a closed terminal (SIGHUP) stop the batch as Ctrl-C does.
+        with stop_signals_as_interrupt(), _progress(len(jobs) + len(refused)) as on_record:
             outcome = batch.run_batch(
                 jobs, refused, options, on_record,
                 log_header={"settings": base_values, "argv": sys.argv[1:]},
