@@ -576,9 +576,14 @@ def test_redo_never_writes_over_a_room_tone_or_noise_model(tmp_path, capsys, sce
                        str(media), "--redo", "--jobs", "1")
     assert rc == 1 and last_end(media)["failed"] == 2
     assert all((media / name).read_bytes() == data for name, data in before.items())
+    # The batch-wide room tone sits where the take's output would go.
+    tone_as_output = tmp_path / "o2" / "a.wav"
+    tone_as_output.parent.mkdir()
+    tone_as_output.write_bytes((media / "tone.wav").read_bytes())
     rc, _, _ = run_cli(capsys, "batch", str(media / "a.wav"), "--out", str(tmp_path / "o2"),
-                       "--room-tone", str(tmp_path / "o2" / "a.wav"), "--redo")
-    assert rc == 2  # the batch-wide room tone would be an output: refused before any work
+                       "--room-tone", str(tone_as_output), "--redo", "--jobs", "1")
+    assert rc == 1 and "read by this batch" in last_end(tmp_path / "o2")["failures"][0]["reason"]
+    assert tone_as_output.read_bytes() == before["tone.wav"]
 
 
 def test_start_up_sweep_leaves_another_writers_temporary_file(tmp_path, capsys, scene):

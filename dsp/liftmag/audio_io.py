@@ -908,8 +908,8 @@ def remove_stale_temp(path: PathLike) -> bool:
     as long as it lives (see :func:`_create_temp`), so a file that cannot be locked belongs
     to a live process, perhaps another liftmag writing into the same folder.
     """
-    try:
-        fd = os.open(path, os.O_RDONLY)
+    try:  # O_NONBLOCK: a FIFO that happens to carry such a name must not hang the sweep
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
     except OSError:
         return False
     try:
