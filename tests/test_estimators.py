@@ -1,11 +1,11 @@
-"""Linear and lifted estimators held to the design note's check values and to textbook facts.
+"""Linear and lifted estimators held to docs/estimators.md and to textbook facts.
 
 Sources:
 * Van Trees, Optimum Array Processing (Wiley 2002), ch. 6: delay-and-sum and MVDR are
   distortionless (h^H g = 1); MVDR minimises h^H Phi h under that constraint, with minimum
   1 / (g^H Phi^-1 g) (recalled from memory).
-* Design note "Facts to hold the code to" (/work/shared/design/estimators.md): each test
-  below names the fact it checks; the derivations are repeated in the comments.
+* docs/estimators.md (this repository, with the published references): each test below
+  names the check it holds; the derivations are repeated in the comments.
 * scipy.optimize as an independent optimiser for the "no linear h does better" claims.
 """
 
@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from randmat import crandn, random_covariance
 from scipy import optimize
 
 from liftmag import estimators as est
@@ -26,15 +27,6 @@ from liftmag.lift import (
 from liftmag.study import noise_field
 
 RNG = np.random.default_rng(7)
-
-
-def random_covariance(m: int, rng: np.random.Generator) -> np.ndarray:
-    a = rng.standard_normal((m, m)) + 1j * rng.standard_normal((m, m))
-    return a @ a.conj().T / m + 0.05 * np.eye(m)
-
-
-def crandn(rng: np.random.Generator, *shape: int) -> np.ndarray:
-    return (rng.standard_normal(shape) + 1j * rng.standard_normal(shape)) / np.sqrt(2)
 
 
 def two_mic(frequency_hz: float, spacing_m: float = 0.08):
@@ -53,7 +45,7 @@ def test_delay_sum_and_mvdr_are_distortionless_and_mvdr_minimises_noise() -> Non
     m = 4
     g = np.exp(1j * RNG.uniform(0, 2 * np.pi, m))
     g[0] = 1.0
-    phi = random_covariance(m, RNG)
+    phi = random_covariance(m, RNG, loading=0.05)
     for h in (est.delay_sum_weights(g), est.mvdr_weights(g, phi)):
         np.testing.assert_allclose(np.vdot(h, g), 1.0, atol=1e-13)
     h = est.mvdr_weights(g, phi)
@@ -74,7 +66,8 @@ def test_delay_sum_and_mvdr_are_distortionless_and_mvdr_minimises_noise() -> Non
 
 @pytest.mark.parametrize("frequency_hz", [300.0, 1000.0, 1071.875, 1800.0])
 def test_two_mic_closed_form_power_nulls(frequency_hz: float) -> None:
-    # Design note: with phi0 = 2 pi f delta / c, H = [[s/2, c], [c, s/2]],
+    # docs/estimators.md §3, check 3b (derived).
+    # With phi0 = 2 pi f delta / c, H = [[s/2, c], [c, s/2]],
     # c = 1/(2(1 - cos phi0)), s = -cos phi0/(1 - cos phi0) gives B(90) = 1 and
     # B(0) = B(180) = 0 (derived: B(theta) = s + 2c cos(phi0 cos theta)). It is also the
     # minimum-norm solution: the constraints leave only the direction rho([[1, 0], [0, -1]])
@@ -92,7 +85,7 @@ def test_two_mic_closed_form_power_nulls(frequency_hz: float) -> None:
 
 @pytest.mark.parametrize("m", [2, 3, 4])
 def test_ula_allows_2m_minus_2_power_nulls_and_refuses_2m_minus_1(m: int) -> None:
-    # Design note "Null budget" (derived): for a far-field ULA, d d^H is Hermitian Toeplitz
+    # docs/estimators.md §3, check 3a (derived): for a far-field ULA, d d^H is Hermitian Toeplitz
     # with unit diagonal, a (2M-1)-dimensional real family; target plus 2M-2 nulls fill it.
     pos = linear_array_m(m, 0.05)
     f_hz = 1500.0
@@ -110,7 +103,8 @@ def test_ula_allows_2m_minus_2_power_nulls_and_refuses_2m_minus_1(m: int) -> Non
 
 
 def test_no_linear_two_mic_beamformer_beats_cos_squared_at_its_worse_endfire_side() -> None:
-    # Design note: with h^H g = 1 at 90 deg, min_h max(|h^H d(0)|^2, |h^H d(180)|^2) =
+    # docs/estimators.md §3, check 3c (derived).
+    # With h^H g = 1 at 90 deg, min_h max(|h^H d(0)|^2, |h^H d(180)|^2) =
     # cos^2(phi0/2). Derived: write a = conj(h), a1 = 1 - a2; the responses are
     # r_pm = 1 + a2 (exp(+-j phi0) - 1). Conjugating a2 swaps |r_+| and |r_-|, and the worse
     # of the two is convex in a2, so a real a2 is optimal; minimising
@@ -144,7 +138,8 @@ def test_no_linear_two_mic_beamformer_beats_cos_squared_at_its_worse_endfire_sid
 
 
 def test_point_null_width_at_quarter_wave_endfire_phase() -> None:
-    # Design note: at phi0 = pi/2 the closed-form pattern is below -40 dB only within
+    # docs/estimators.md §3, check 3b.
+    # At phi0 = pi/2 the closed-form pattern is below -40 dB only within
     # about +-0.65 deg of each null. Derived: B(theta) = cos((pi/2) cos theta) ~ pi theta^2/4
     # near theta = 0, so B < 1e-4 for theta < sqrt(4e-4/pi) rad = 0.6466 deg. Measured here.
     f_hz = SPEED_OF_SOUND_M_S / (4 * 0.08)
@@ -168,12 +163,13 @@ def test_point_null_width_at_quarter_wave_endfire_phase() -> None:
 
 @pytest.mark.parametrize("m", [2, 3, 4])
 def test_lifted_mv_equals_mvdr_power_minus_residual_in_gaussian_noise(m: int) -> None:
-    # Design note fact (derived there: in the noise-whitened domain the Gaussian lifted noise
+    # docs/estimators.md §5, check 5c
+    # (derived there: in the noise-whitened domain the Gaussian lifted noise
     # covariance is the identity and rho_g is an eigenvector of K, since
     # K(X) = g g^H X + X g g^H): P_mv = |h_mvdr^H y|^2 - 1/(g^H Phi^-1 g) for every prior.
     g = crandn(RNG, m)
     g = g / g[0]
-    phi = random_covariance(m, RNG)
+    phi = random_covariance(m, RNG, loading=0.05)
     c_v = gaussian_lift_covariance(phi)
     k = crossterm_lift_covariance(g, phi)
     rho_g = rho(est.outer(g))
@@ -226,7 +222,8 @@ def _best_linear_h(loss, m: int, rng: np.random.Generator) -> float:
 def test_quadratic_wiener_beats_every_lifted_linear_estimator_on_a_squared(
     kind: str, m: int, snr_db: float
 ) -> None:
-    # Design note fact: linear estimators are the rank-one subset H = h h^H of the quadratic
+    # docs/estimators.md §2 and §6, check 6b.
+    # Linear estimators are the rank-one subset H = h h^H of the quadratic
     # ones, so the MSE-optimal quadratic form (normal equations w = A^2 R^-1 E[rho]) cannot
     # do worse on A^2. Analytic MSE from the exact second-moment matrix R.
     a2 = 1.0
@@ -293,7 +290,8 @@ def test_quadratic_wiener_in_sample_and_with_true_statistics_on_samples() -> Non
 
 @pytest.mark.parametrize("kind", ["gaussian", "exponential", "two-interferers"])
 def test_affine_lifted_beats_mvdr_power_minus_noise_for_random_power(kind: str) -> None:
-    # Design note fact. Complex Gaussian S: P = |S|^2 is exponential, E[P^2] = 2 lambda^2,
+    # docs/estimators.md §5 and §6, check 6b.
+    # Complex Gaussian S: P = |S|^2 is exponential, E[P^2] = 2 lambda^2,
     # Var(P) = lambda^2 (handbook: exponential distribution). Both estimators are unbiased
     # affine functions of rho, so MSE = Var(P) - 2 w . Cov(rho, P) + w^T C_rho w with
     # Cov(rho, P) = Var(P) rho_g and C_rho = Var(P) rho_g rho_g^T + C_v + lambda K (derived:
@@ -359,7 +357,8 @@ def _fixed_magnitude_data(snr_db: float, n: int, rng: np.random.Generator):
 def test_iterative_fixed_magnitude_unbiased_converges_and_naive_is_biased_low(
     snr_db: float,
 ) -> None:
-    # Design note fact: the unbiased update converges in a few steps; the naive update (mean
+    # docs/estimators.md §6, check 6d.
+    # The unbiased update converges in a few steps; the naive update (mean
     # of the per-sample estimates) is biased low and collapses towards zero at low SNR.
     y, g, phi, c_v, rho_g, mu_v, k = _fixed_magnitude_data(snr_db, 20_000, RNG)
     r = lift_snapshots(y)

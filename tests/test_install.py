@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 import venv
@@ -36,8 +37,13 @@ def run(args: list[str | Path], cwd: Path, timeout_s: float = 600) -> subprocess
 def installed(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """A fresh virtual environment holding only the built wheel and its dependencies."""
     root = tmp_path_factory.mktemp("wheel-install")
+    # pip builds in the source folder (setuptools writes build/lib there): build from a copy.
+    source = root / "source"
+    shutil.copytree(REPO, source, ignore=shutil.ignore_patterns(
+        ".git", ".venv", "build", "*.egg-info", "__pycache__", ".*_cache", ".hypothesis",
+        "liftmag-demo", "liftmag-out"))
     wheels = root / "wheels"
-    run([sys.executable, "-m", "pip", "wheel", "--quiet", "--no-deps", "-w", wheels, REPO],
+    run([sys.executable, "-m", "pip", "wheel", "--quiet", "--no-deps", "-w", wheels, source],
         cwd=root)
     (wheel,) = wheels.glob("liftmag-*.whl")
     env_dir = root / "env"

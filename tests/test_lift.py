@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from randmat import random_covariance
 
 from liftmag.estimators import linear_as_lifted, outer
 from liftmag.lift import (
@@ -35,11 +36,6 @@ def random_hermitian(m: int, rng: np.random.Generator, n: int = 1) -> np.ndarray
     return (a + np.conj(np.swapaxes(a, -1, -2))) / 2
 
 
-def random_covariance(m: int, rng: np.random.Generator) -> np.ndarray:
-    a = rng.standard_normal((m, m)) + 1j * rng.standard_normal((m, m))
-    return a @ a.conj().T / m + 0.1 * np.eye(m)
-
-
 @pytest.mark.parametrize("m", [1, 2, 3, 4, 6])
 def test_rho_is_an_isometry_for_the_frobenius_inner_product(m: int) -> None:
     # Horn & Johnson: <H, Y>_F = trace(H^H Y) = trace(H Y) for Hermitian H.
@@ -54,7 +50,7 @@ def test_rho_is_an_isometry_for_the_frobenius_inner_product(m: int) -> None:
 
 @pytest.mark.parametrize("m", [2, 3, 4])
 def test_linear_special_case_identity(m: int) -> None:
-    # Design note, "Facts": w . rho(y y^H) = |h^H y|^2 for w = rho(h h^H), since
+    # docs/estimators.md §2, check 2a: w . rho(y y^H) = |h^H y|^2 for w = rho(h h^H), since
     # y^H (h h^H) y = |h^H y|^2 (algebra: both sides are the same quadratic form).
     h = RNG.standard_normal((200, m)) + 1j * RNG.standard_normal((200, m))
     y = RNG.standard_normal((200, m)) + 1j * RNG.standard_normal((200, m))
@@ -80,7 +76,7 @@ def test_gaussian_lift_covariance_matches_monte_carlo_and_is_identity_when_white
     # power: identity (each lifted entry has unit variance and they are uncorrelated).
     m = 3
     np.testing.assert_allclose(gaussian_lift_covariance(np.eye(m)), np.eye(m * m), atol=1e-15)
-    phi = random_covariance(m, RNG)
+    phi = random_covariance(m, RNG, loading=0.1)
     n = 400_000
     white = (RNG.standard_normal((n, m)) + 1j * RNG.standard_normal((n, m))) / np.sqrt(2)
     v = white @ np.linalg.cholesky(phi).T
@@ -91,7 +87,8 @@ def test_gaussian_lift_covariance_matches_monte_carlo_and_is_identity_when_white
 
 
 def test_crossterm_lift_covariance_matches_monte_carlo() -> None:
-    # Design note closed form: Cov(vec(S g v^H + S^* v g^H)) = lambda (Phi^T kron g g^H +
+    # docs/estimators.md §5, check 5a.
+    # Closed form: Cov(vec(S g v^H + S^* v g^H)) = lambda (Phi^T kron g g^H +
     # conj(g g^H) kron Phi) for circular S independent of v. Here S has a uniform phase and
     # fixed magnitude (circular, E[S^2] = 0) and v is non-Gaussian: only second-order
     # statistics of v enter.
@@ -111,7 +108,8 @@ def test_crossterm_lift_covariance_matches_monte_carlo() -> None:
 
 @pytest.mark.parametrize("m", [2, 3, 4])
 def test_crossterm_factor_reproduces_the_closed_form_with_rank_2m_minus_1(m: int) -> None:
-    # The design note's closed form with Phi = I (checked by Monte Carlo above) against the
+    # docs/estimators.md §5, check 5b.
+    # The closed form with Phi = I (checked by Monte Carlo above) against the
     # factor the engine uses, and its rank: the Hermitian matrices g u^H + u g^H span a
     # (2M - 1)-dimensional real space (the tangent space of the rank-one Hermitian matrices at
     # g g^H: 2M real parameters of u minus the one, u = i g, that cancels; a standard fact,

@@ -4,7 +4,7 @@ Sources:
 * Plane-wave delay between two microphones a distance delta apart, tau = delta cos(theta)/c
   (L. E. Kinsler et al., Fundamentals of Acoustics, 4th ed., 2000; recalled from memory),
   c = 343 m/s at 20 degC (handbook value, recalled from memory).
-* Design note (/work/shared/design/estimators.md): B(theta) = w . rho(d d^H), equal to
+* docs/estimators.md §2 and §6: B(theta) = w . rho(d d^H), equal to
   |h^H d|^2 for a linear h; "the quadratic Wiener does not, by itself, put deep power nulls on
   two Gaussian interferers; deep nulls come from the explicit constraint design"; claims about
   nulls are checked on patterns.
@@ -37,7 +37,7 @@ def test_steering_phase_matches_the_plane_wave_delay() -> None:
 
 
 def test_linear_pattern_is_the_squared_array_response() -> None:
-    # Design note: for a linear h, B(theta) = |h^H d(theta)|^2.
+    # docs/estimators.md §2: for a linear h, B(theta) = |h^H d(theta)|^2.
     pos = linear_array_m(4, 0.04)
     angles = np.linspace(0, 180, 181)
     d = steering_vectors(pos, angles, 2000.0)
@@ -48,7 +48,7 @@ def test_linear_pattern_is_the_squared_array_response() -> None:
 
 @pytest.mark.parametrize("inr_db", [0.0, 10.0, 20.0, 30.0, 40.0])
 def test_quadratic_wiener_does_not_null_two_gaussian_interferers(inr_db: float) -> None:
-    # Design note fact, checked on patterns: two mics, target 90 deg, Gaussian interferers at
+    # docs/estimators.md §6, check 6f, on patterns: two mics, target 90 deg, Gaussian interferers at
     # 0 and 180 deg. Measured with this model: the MSE-optimal quadratic forms (fixed-
     # magnitude and random-power Wiener) leave the interferers within a few dB of the
     # target's response at every INR, where the constraint design puts both below -60 dB.

@@ -247,3 +247,107 @@ def test_damaged_files_give_value_error_or_parse(
     except ValueError:
         return
     assert all(c.offset + 8 + c.size <= len(kept) for c in chunks)
+
+
+# ------------------------------------------------------------- iXML TRACK_LIST
+# iXML specification (v2.x, recalled from memory): TRACK_LIST = TRACK_COUNT + one TRACK
+# per track; TRACK = CHANNEL_INDEX (recorder's track number), INTERLEAVE_INDEX (1-based
+# position in this file's interleave), NAME, optional FUNCTION and others.
+
+POLY_IXML = (
+    b'<?xml version="1.0" encoding="UTF-8"?>\r\n<BWFXML>\r\n  <SCENE>4A</SCENE>\r\n'
+    b"  <TRACK_LIST>\r\n    <TRACK_COUNT>3</TRACK_COUNT>\r\n"
+    b"    <TRACK><CHANNEL_INDEX>2</CHANNEL_INDEX><INTERLEAVE_INDEX>1</INTERLEAVE_INDEX>"
+    b"<NAME>BOOM</NAME><FUNCTION>MIC</FUNCTION></TRACK>\r\n"
+    b"    <TRACK><CHANNEL_INDEX>5</CHANNEL_INDEX><INTERLEAVE_INDEX>2</INTERLEAVE_INDEX>"
+    b"<NAME>R&amp;D LAV</NAME></TRACK>\r\n"
+    b"    <TRACK><CHANNEL_INDEX>7</CHANNEL_INDEX><INTERLEAVE_INDEX>3</INTERLEAVE_INDEX>"
+    b"<NAME>MIX</NAME></TRACK>\r\n"
+    b"  </TRACK_LIST>\r\n  <TAKE>2</TAKE>\r\n</BWFXML>\r\n\x00\x00"
+)
+
+
+def test_ixml_tracks_are_read_in_order() -> None:
+    tracks = rc.ixml_tracks(POLY_IXML)
+    assert tracks is not None
+    assert [(t.channel_index, t.interleave_index, t.name) for t in tracks] == [
+        (2, 1, "BOOM"), (5, 2, "R&D LAV"), (7, 3, "MIX")
+    ]
+    assert rc.ixml_tracks(IXML) is None  # no TRACK_LIST: nothing describes the tracks
+
+
+def test_rewritten_track_list_follows_the_specification() -> None:
+    import xml.etree.ElementTree as ET
+
+    tracks = rc.ixml_tracks(POLY_IXML)
+    assert tracks is not None
+    out = rc.rewrite_ixml_tracks(POLY_IXML, [tracks[1], tracks[0]])
+    root = ET.fromstring(out.rstrip(b"\x00"))
+    assert root.findtext("TRACK_LIST/TRACK_COUNT") == "2"
+    got = [
+        (t.findtext("CHANNEL_INDEX"), t.findtext("INTERLEAVE_INDEX"), t.findtext("NAME"),
+         t.findtext("FUNCTION"))
+        for t in root.findall("TRACK_LIST/TRACK")
+    ]
+    assert got == [("5", "1", "R&D LAV", None), ("2", "2", "BOOM", "MIC")]
+    # Every byte outside TRACK_LIST is kept, the recorder's CR LF and NUL padding included.
+    start = POLY_IXML.index(b"<TRACK_LIST>")
+    end = POLY_IXML.index(b"</TRACK_LIST>") + len(b"</TRACK_LIST>")
+    assert out.startswith(POLY_IXML[:start])
+    assert out.endswith(POLY_IXML[end:])
+
+
+def test_new_track_elements_and_names_that_need_escaping() -> None:
+    import xml.etree.ElementTree as ET
+
+    new = rc.IxmlTrack(channel_index=9, interleave_index=None, name="A<B & C")
+    out = rc.rewrite_ixml_tracks(POLY_IXML, [new])
+    track = ET.fromstring(out.rstrip(b"\x00")).find("TRACK_LIST/TRACK")
+    assert track is not None
+    assert track.findtext("NAME") == "A<B & C"
+    assert track.findtext("CHANNEL_INDEX") == "9" and track.findtext("INTERLEAVE_INDEX") == "1"
+    assert rc.rewrite_ixml_tracks(IXML, [new]) == IXML  # nothing invented
+
+
+# --------------------------------------------------------------- coding history
+# EBU R 98 (1999): a CodingHistory row is A=,F=,W=,M=,T= separated by commas, free text
+# without commas, ending in CR LF (recalled from memory; Tech 3285 v2 gives examples).
+
+
+def test_coding_history_line_layout() -> None:
+    line = rc.coding_history_line(48_000, 24, 1, "liftmag 1.0; cleaned, mics 1,2; ré")
+    # Commas and non-ASCII characters of the free text become spaces.
+    assert line == "A=PCM,F=48000,W=24,M=mono,T=liftmag 1.0; cleaned mics 1 2; r\r\n"
+    assert line.endswith("\r\n") and line.count(",") == 4 and line.isascii()
+    assert ",M=" not in rc.coding_history_line(48_000, 24, 4, "x")  # R 98 has no 4-ch mode
+    assert ",M=dual-mono," in rc.coding_history_line(48_000, 24, 2, "x", mode="dual-mono")
+    with pytest.raises(ValueError, match="no mode"):
+        rc.coding_history_line(48_000, 24, 6, "x", mode="5.1")
+
+
+def test_append_coding_history_keeps_fixed_fields_and_earlier_rows() -> None:
+    bext = hand_packed_bext()
+    line = rc.coding_history_line(48_000, 24, 1, "liftmag")
+    out = rc.append_coding_history(bext, line)
+    # EBU Tech 3285: the 602 bytes before CodingHistory are the fixed fields.
+    assert out[:602] == bext[:602]
+    assert out == bext + line.encode()
+    info = rc.parse_bext(out)
+    assert info.time_reference_samples == TIME_REFERENCE_SAMPLES
+    assert info.coding_history.split("\r\n") == [
+        "A=PCM,F=48000,W=24,M=stereo,T=test", line[:-2], ""
+    ]
+    # A recorder's NUL-padded history without its last CR LF: the new row still starts
+    # on a line of its own, and the padding goes.
+    padded = bext[:602] + b"A=PCM,F=48000,W=24,M=mono" + b"\0" * 64
+    out = rc.append_coding_history(padded, line)
+    assert out == bext[:602] + b"A=PCM,F=48000,W=24,M=mono\r\n" + line.encode()
+    assert rc.append_coding_history(bext[:602], line) == bext[:602] + line.encode()
+
+
+def test_append_coding_history_refuses_bad_input() -> None:
+    with pytest.raises(ValueError, match="602"):
+        rc.append_coding_history(b"\0" * 100, "A=PCM\r\n")
+    for bad in ("A=PCM", "A=PCM\r\nA=PCM\r\n", "A=PCM,T=é\r\n"):
+        with pytest.raises(ValueError, match="one line of ASCII"):
+            rc.append_coding_history(hand_packed_bext(), bad)

@@ -5,7 +5,7 @@ Sources:
 * scipy.stats (reference library): moments of the exponential, Laplace and normal
   distributions; the Rician distribution (scipy.stats.rice) of |nu + n| for circular
   Gaussian n, S. O. Rice, Bell Syst. Tech. J. 24 (1945).
-* Design note (/work/shared/design/estimators.md), "Facts": Monte-Carlo linear Wiener
+* docs/estimators.md §6 (checks 6a, 6c-6e): Monte-Carlo linear Wiener
   against the Rician closed form; skewed noise at high SNR; convergence of the iterative
   fixed-magnitude estimators.
 """
@@ -90,7 +90,7 @@ def rician_wiener_rmse(snr_db: float, m: int = 2, a: float = 1.0) -> tuple[float
 
 
 def test_linear_wiener_monte_carlo_matches_the_rician_closed_form() -> None:
-    # Design note fact: within the Monte-Carlo sampling error at every SNR.
+    # docs/estimators.md §6, check 6a: within the Monte-Carlo sampling error at every SNR.
     cfg = StudyConfig(noise="gaussian", estimators=("linear-wiener",), stats_samples=0)
     result = run_study(cfg)
     for point in result.points:
@@ -102,7 +102,8 @@ def test_linear_wiener_monte_carlo_matches_the_rician_closed_form() -> None:
 
 @pytest.mark.parametrize("noise", ["gaussian", "exponential", "laplace"])
 def test_every_estimator_is_near_the_closed_form_at_20_db(noise: str) -> None:
-    # Brief/design note: at +20 dB every estimator is within 10 % of the closed-form linear
+    # docs/estimators.md §6, check 6c.
+    # At +20 dB every estimator is within 10 % of the closed-form linear
     # value, about 5 % of A for two mics. For the non-Gaussian white kinds the closed form
     # still applies at high SNR (derived: the error is then the in-phase component of the
     # noise projection, whose variance is second-order only).
@@ -127,7 +128,8 @@ def test_skewed_noise_quadratic_and_linear_wiener_meet_at_high_snr() -> None:
 
 
 def test_iterative_estimators_converge_at_every_snr() -> None:
-    # Design note fact: the unbiased update converges in a few steps from a high guess.
+    # docs/estimators.md §6, check 6d: the unbiased update converges in a few steps from a
+    # high guess.
     for noise in ("gaussian", "two-interferers"):
         cfg = StudyConfig(noise=noise, estimators=("linear-wiener-fixed", "lifted-wiener-fixed"))
         for point in run_study(cfg).points:

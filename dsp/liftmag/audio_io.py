@@ -37,12 +37,14 @@ __all__ = [
     "AudioOutputError",
     "OutputExistsError",
     "WriteReport",
+    "carried_chunks",
     "open_group",
     "output_container",
     "probe",
     "read_blocks",
     "refuse_destination",
     "remove_stale_temp",
+    "require_at_most_max_mics",
     "require_multichannel",
     "temp_prefix",
 ]
@@ -437,6 +439,22 @@ def read_blocks(
     return group.read_blocks(block_frames, check_finite=check_finite)
 
 
+def require_at_most_max_mics(n_mics: int) -> None:
+    """Refuse more than :data:`MAX_CHANNELS` microphones, before any statistics are allocated.
+
+    Raises
+    ------
+    AudioInputError
+        Naming the limit and why it exists.
+    """
+    if n_mics > MAX_CHANNELS:
+        raise AudioInputError(
+            f"{n_mics} microphones: liftmag takes at most {MAX_CHANNELS} (its statistics grow "
+            "as the fourth power of the count); choose the microphones nearest the talker "
+            "(--mics)"
+        )
+
+
 def require_multichannel(source: AudioInfo | AudioGroup) -> None:
     """Refuse a source with fewer than two channels.
 
@@ -445,12 +463,6 @@ def require_multichannel(source: AudioInfo | AudioGroup) -> None:
     AudioInputError
         Explaining that two or more microphones are needed.
     """
-    if source.channels > MAX_CHANNELS:
-        raise AudioInputError(
-            f"{source.channels} channels: liftmag takes at most {MAX_CHANNELS} microphones "
-            "(its statistics grow as the fourth power of the count); pick the microphones "
-            "nearest the talker"
-        )
     if source.channels >= 2:
         return
     name = source.path if isinstance(source, AudioInfo) else source.paths[0]
@@ -560,6 +572,18 @@ class AtomicAudioWriter:
         self._clipped = 0
         self._peak = 0.0
         self.report: WriteReport | None = None
+
+    def use_chunks(self, chunks: Sequence[tuple[str, bytes]]) -> None:
+        """Write these ``(id, payload)`` chunks instead of the ones carried from the input.
+
+        For callers that rewrite the input's metadata to describe the output. Formats
+        other than WAVE cannot hold them: they are then reported as dropped.
+        """
+        found = tuple(chunks)
+        if self.format in _WAVE_FORMATS:
+            self._chunks, self._dropped = found, ()
+        else:
+            self._chunks, self._dropped = (), tuple(chunk_id for chunk_id, _ in found)
 
     def __enter__(self) -> AtomicAudioWriter:
         self._temp, self._lock_fd = _create_temp(self.path)
@@ -809,10 +833,24 @@ def _output_format(
 
 
 def _chunks_from(path: Path) -> tuple[tuple[str, bytes], ...]:
+    return carried_chunks(path)
+
+
+def carried_chunks(
+    path: PathLike, chunk_ids: Sequence[str] = riffchunks.CARRIED_CHUNK_IDS
+) -> tuple[tuple[str, bytes], ...]:
+    """``(id, payload)`` of these chunks in a WAVE input (see ``riffchunks.chunks_to_carry``),
+    also when its RIFF size field is one a streaming writer leaves (0 or 0xFFFFFFFF).
+
+    Raises
+    ------
+    AudioInputError
+        For a chunk list that is damaged (the audio itself was checked when probed).
+    """
     try:
-        return riffchunks.chunks_to_carry(path)
+        return riffchunks.chunks_to_carry(path, chunk_ids)
     except ValueError as exc:
-        found = _chunks_ignoring_riff_size(path)
+        found = _chunks_ignoring_riff_size(Path(path), chunk_ids)
         if found is not None:
             return found
         raise AudioInputError(
@@ -821,7 +859,9 @@ def _chunks_from(path: Path) -> tuple[tuple[str, bytes], ...]:
         ) from exc
 
 
-def _chunks_ignoring_riff_size(path: Path) -> tuple[tuple[str, bytes], ...] | None:
+def _chunks_ignoring_riff_size(
+    path: Path, chunk_ids: Sequence[str]
+) -> tuple[tuple[str, bytes], ...] | None:
     """Carried chunks of a RIFF WAVE whose RIFF size field is unusual, or None if damaged.
 
     Streaming writers leave the RIFF size (and sometimes the data size) at 0 or 0xFFFFFFFF
@@ -843,10 +883,10 @@ def _chunks_ignoring_riff_size(path: Path) -> tuple[tuple[str, bytes], ...] | No
             if offset + 8 + chunk_size > size:
                 return None
             name = chunk_id.decode("latin-1")
-            if name in riffchunks.CARRIED_CHUNK_IDS and name not in found:
+            if name in chunk_ids and name not in found:
                 found[name] = fh.read(chunk_size)
             offset += 8 + chunk_size + (chunk_size & 1)
-    return tuple((cid, found[cid]) for cid in riffchunks.CARRIED_CHUNK_IDS if cid in found)
+    return tuple((cid, found[cid]) for cid in chunk_ids if cid in found)
 
 
 def temp_prefix(destination: PathLike) -> str:

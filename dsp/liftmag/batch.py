@@ -33,8 +33,15 @@ from pathlib import Path
 from typing import Any
 
 from liftmag import __version__, audio_io
-from liftmag.fileproc import learn_noise, load_noise_model, open_source, process_file
+from liftmag.fileproc import (
+    learn_noise,
+    load_noise_model,
+    mic_channels,
+    open_source,
+    process_file,
+)
 from liftmag.settings import Settings, settings_fields
+from liftmag.tracks import SAME_TRACKS, parse_mics
 
 LOG_NAME = "liftmag-batch.jsonl"
 STATE_DIR_NAME = ".liftmag-batch"  # learned noise models and the lock live here
@@ -50,6 +57,7 @@ AUDIO_SUFFIXES = frozenset(
 )
 MANIFEST_PATH_COLUMNS = ("input", "output", "room_tone", "noise_model")
 MANIFEST_REQUIRED = ("input", "output")
+MANIFEST_TAKE_COLUMNS = ("mics",)  # per-take choices that are not engine settings
 MANIFEST_HIDDEN_SETTINGS = ("bypass",)  # a host control, as on the command line
 STEM_SEPARATORS = re.compile(r"[;|]")
 WORKER_STOP_GRACE_S = 10.0  # time a stopped worker gets to remove its temporary file
@@ -107,6 +115,8 @@ class Job:
     noise: NoiseRef | None = None
     subtype: str | None = None
     redo: bool = False
+    mics: tuple[str, ...] = ()
+    same_tracks: bool = False
     record: str = ""  # where the resume record lives (default: beside the output, as before)
 
 
@@ -381,7 +391,7 @@ def manifest_columns() -> tuple[str, ...]:
     settings = tuple(
         f.name for f in settings_fields() if f.name not in MANIFEST_HIDDEN_SETTINGS
     )
-    return MANIFEST_PATH_COLUMNS + settings
+    return MANIFEST_PATH_COLUMNS + MANIFEST_TAKE_COLUMNS + settings
 
 
 def _column_name(header: str) -> str:
@@ -476,7 +486,8 @@ def _manifest_row(row: dict[str, str], number: int, base: Path, out: Path) -> Ta
         if name in MANIFEST_PATH_COLUMNS or not text:
             continue
         try:
-            overrides.append((name, parse_setting(name, text)))
+            value = parse_mics(text) if name == "mics" else parse_setting(name, text)
+            overrides.append((name, value))
         except ValueError as exc:
             problems.append(str(exc))
     return TakePlan(
@@ -574,8 +585,13 @@ def take_key(
     noise_sha256: str | None,
     subtype: str | None,
     version: str = __version__,
+    tracks: dict[str, Any] | None = None,
 ) -> str:
-    """What an output was made from: input content, settings, noise model, liftmag version."""
+    """What an output was made from: input content, settings, noise model, liftmag version.
+
+    ``tracks`` (the chosen mics, same-tracks output) joins the key only when set, so the
+    keys of takes that use neither stay as they were.
+    """
     payload = {
         "liftmag": version,
         "inputs": list(input_sha256),
@@ -583,6 +599,8 @@ def take_key(
         "noise_model": noise_sha256,
         "subtype": subtype.upper() if subtype else None,
     }
+    if tracks:
+        payload["tracks"] = tracks
     blob = json.dumps(payload, sort_keys=True, separators=(",", ":")).encode()
     return hashlib.sha256(blob).hexdigest()
 
@@ -660,16 +678,21 @@ class NoiseResolver:
 
     def __init__(self, state_dir: Path) -> None:
         self.state_dir = state_dir
-        self._cache: dict[tuple[NoiseSource, float], NoiseRef] = {}
+        self._cache: dict[tuple[NoiseSource, float, tuple[str, ...]], NoiseRef] = {}
 
-    def resolve(self, source: NoiseSource, frame_s: float) -> NoiseRef:
-        """Raises ``AudioInputError`` (a ValueError) naming the file if it cannot be used."""
-        cache_key = (source, frame_s)
+    def resolve(
+        self, source: NoiseSource, frame_s: float, mics: tuple[str, ...] = ()
+    ) -> NoiseRef:
+        """Raises ``AudioInputError`` (a ValueError) naming the file if it cannot be used.
+
+        ``mics`` restricts room tone to the takes' microphones (a model file is as learned).
+        """
+        cache_key = (source, frame_s, mics)
         if cache_key not in self._cache:
             if source.kind == "model":
                 self._cache[cache_key] = self._model_file(source.paths)
             else:
-                self._cache[cache_key] = self._learned(source.paths, frame_s)
+                self._cache[cache_key] = self._learned(source.paths, frame_s, mics)
         return self._cache[cache_key]
 
     @staticmethod
@@ -679,17 +702,20 @@ class NoiseResolver:
         load_noise_model(paths[0])  # refuses a file that is not a noise model, clearly
         return NoiseRef(os.path.abspath(paths[0]), sha256_file(paths[0]))
 
-    def _learned(self, paths: tuple[str, ...], frame_s: float) -> NoiseRef:
+    def _learned(self, paths: tuple[str, ...], frame_s: float, mics: tuple[str, ...]) -> NoiseRef:
         source = open_source(paths)
-        digest = hashlib.sha256(
-            json.dumps([__version__, frame_s, [sha256_file(p) for p in paths]]).encode()
-        ).hexdigest()
+        channels = mic_channels(source, mics)
+        identity = [__version__, frame_s, [sha256_file(p) for p in paths]]
+        if channels is not None:  # only then, so models cached before --mics stay valid
+            identity.append(list(channels))
+        digest = hashlib.sha256(json.dumps(identity).encode()).hexdigest()
         target = self.state_dir / f"room-tone-{digest[:20]}.npz"
         if not target.is_file():
             # Learned exactly as `liftmag learn` does (frame length is all it depends on).
             model = learn_noise(
                 source, Settings(frame_s=frame_s), (),
                 description="learned from " + ", ".join(Path(p).name for p in paths),
+                channels=channels,
             )
             self.state_dir.mkdir(parents=True, exist_ok=True)
             audio_io.write_atomically(target, model.to_bytes())
@@ -704,9 +730,13 @@ def build_jobs(
     *,
     subtype: str | None = None,
     redo: bool = False,
+    mics: tuple[str, ...] = (),
+    same_tracks: bool = False,
 ) -> tuple[list[Job], list[TakeRecord]]:
     """Planned takes -> runnable jobs, and failure records for takes refused before running.
 
+    ``mics`` and ``same_tracks`` are the batch-wide choices; a manifest's ``mics`` and
+    ``output_mode`` cells override them for their take.
     Each job's resume record goes under the resolver's state folder (``<out>/.liftmag-batch``).
     """
     out_dir = resolver.state_dir.parent
@@ -717,9 +747,14 @@ def build_jobs(
             refused.append(_refusal(plan, plan.problem))
             continue
         try:
-            frame_s = Settings(**{**base_values, **dict(plan.overrides)}).frame_s
-            noise = resolver.resolve(plan.noise, frame_s) if plan.noise else batch_noise
-            settings = take_settings(base_values, plan.overrides, noise is not None)
+            overrides, take_mics, take_same = take_track_options(
+                plan.overrides, mics, same_tracks
+            )
+            frame_s = Settings(**{**base_values, **dict(overrides)}).frame_s
+            noise = (
+                resolver.resolve(plan.noise, frame_s, take_mics) if plan.noise else batch_noise
+            )
+            settings = take_settings(base_values, overrides, noise is not None)
         except (ValueError, OSError) as exc:
             refused.append(_refusal(plan, one_line(exc)))
             continue
@@ -727,10 +762,31 @@ def build_jobs(
             Job(
                 label=plan.label, inputs=tuple(os.path.abspath(p) for p in plan.inputs),
                 output=os.path.abspath(plan.output), settings=settings, noise=noise,
-                subtype=subtype, redo=redo, record=str(record_path(plan.output, out_dir)),
+                subtype=subtype, redo=redo, mics=take_mics, same_tracks=take_same,
+                record=str(record_path(plan.output, out_dir)),
             )
         )
     return jobs, refused
+
+
+def take_track_options(
+    overrides: Sequence[tuple[str, Any]], mics: tuple[str, ...], same_tracks: bool
+) -> tuple[tuple[tuple[str, Any], ...], tuple[str, ...], bool]:
+    """Take the ``mics`` and ``same-tracks`` choices out of a take's overrides.
+
+    Returns the overrides left for ``Settings``, the take's mics and whether it writes
+    the same tracks (``output_mode`` ``same-tracks`` cleans as ``cleaned`` does).
+    """
+    rest = []
+    for name, value in overrides:
+        if name == "mics":
+            mics = value
+        elif name == "output_mode":
+            same_tracks = value == SAME_TRACKS
+            rest.append((name, "cleaned" if same_tracks else value))
+        else:
+            rest.append((name, value))
+    return tuple(rest), mics, same_tracks
 
 
 def _refusal(plan: TakePlan, reason: str) -> TakeRecord:
@@ -775,7 +831,10 @@ def _run_job(job: Job, started: float) -> TakeRecord:
     source = open_source(job.inputs)
     input_sha = [sha256_file(p) for p in job.inputs]
     model = _load_checked_model(job.noise) if job.noise else None
-    key = take_key(input_sha, job.settings, job.noise.sha256 if job.noise else None, job.subtype)
+    key = take_key(
+        input_sha, job.settings, job.noise.sha256 if job.noise else None, job.subtype,
+        tracks=_track_key(job),
+    )
     out = Path(job.output)
     previous = read_record(_job_record(job)) or read_record(record_path(out))
     if not job.redo and is_up_to_date(out, previous, key):
@@ -795,7 +854,7 @@ def _run_job(job: Job, started: float) -> TakeRecord:
     try:
         result = process_file(
             job.inputs, out, job.settings, noise_model=model, force=out.exists(),
-            subtype=job.subtype,
+            subtype=job.subtype, mics=job.mics, same_tracks=job.same_tracks,
         )
     except BaseException:
         if not out.exists():
@@ -810,6 +869,12 @@ def _run_job(job: Job, started: float) -> TakeRecord:
         job.label, "done", job.inputs, job.output, duration_s=result.duration_s,
         elapsed_s=time.perf_counter() - started, key=key, warnings=result.warnings,
     )
+
+
+def _track_key(job: Job) -> dict[str, Any] | None:
+    if not job.mics and not job.same_tracks:
+        return None
+    return {"mics": list(job.mics), "same_tracks": job.same_tracks}
 
 
 def _load_checked_model(ref: NoiseRef):

@@ -12,6 +12,7 @@ from collections.abc import Sequence
 VERBS: dict[str, str] = {
     "process": "liftmag.commands.process",
     "batch": "liftmag.commands.batch",
+    "tracks": "liftmag.commands.tracks",
     "learn": "liftmag.commands.learn",
     "compare": "liftmag.commands.compare",
     "pattern": "liftmag.commands.pattern",
@@ -23,6 +24,7 @@ VERBS: dict[str, str] = {
 VERB_SUMMARIES: dict[str, str] = {
     "process": "clean one multichannel take (or a group of mono stems)",
     "batch": "clean many takes: folders, globs or a manifest, in parallel, resumable",
+    "tracks": "list a take's tracks (number, name, level) to choose --mics from",
     "learn": "learn a reusable noise model from a room-tone recording",
     "compare": "A/B liftmag against other versions: aligned, loudness-matched, scored",
     "pattern": "plot power beam patterns of the estimators",

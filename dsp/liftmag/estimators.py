@@ -10,7 +10,7 @@ microphone and ``v`` zero-mean noise independent of ``S`` with covariance ``Phi_
   ``w = rho(H)`` real; see :mod:`liftmag.lift`.
 
 Every function broadcasts over leading axes (bins, frames). Lifted statistics use the
-notation of the design note: ``rho_g = rho(g g^H)``, ``mu_v = rho(Phi_v)`` (the mean of the
+notation of ``docs/estimators.md``: ``rho_g = rho(g g^H)``, ``mu_v = rho(Phi_v)`` (the mean of the
 noise lift), ``C_v`` the covariance of the noise lift and ``K`` the covariance of the lifted
 cross terms per unit speech power (:func:`liftmag.lift.crossterm_lift_covariance`).
 

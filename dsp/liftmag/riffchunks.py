@@ -14,6 +14,11 @@ Only WAVE containers have chunks to carry. FLAC, AIFF, CAF and W64 files
 :func:`chunks_to_carry` returns an empty tuple for them, while
 :func:`list_chunks` refuses them with a ``ValueError``.
 
+Field-recorder metadata is rewritten, not only carried, where the output's audio
+differs from the input's: :func:`rewrite_ixml_tracks` replaces the ``TRACK_LIST`` of
+an ``iXML`` payload (every other byte kept), and :func:`append_coding_history` adds
+one EBU R 98 line to a ``bext`` payload (every fixed field kept).
+
 Malformed files (a chunk that runs past the end of the file, a bad header)
 raise a ``ValueError`` that says where. Copies stream in blocks, so a
 multi-gigabyte ``data`` chunk is never held in memory.
@@ -22,6 +27,7 @@ multi-gigabyte ``data`` chunk is never held in memory.
 from __future__ import annotations
 
 import os
+import re
 import struct
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -31,16 +37,21 @@ __all__ = [
     "CARRIED_CHUNK_IDS",
     "BextInfo",
     "ChunkInfo",
+    "IxmlTrack",
     "RiffLayout",
+    "append_coding_history",
     "chunks_to_carry",
+    "coding_history_line",
     "copy_with_chunks",
     "is_wave_file",
+    "ixml_tracks",
     "list_chunks",
     "parse_bext",
     "read_bext",
     "read_chunk",
     "read_ixml",
     "read_layout",
+    "rewrite_ixml_tracks",
 ]
 
 # Chunks liftmag carries from an input take into its output.
@@ -392,3 +403,204 @@ def _write_ds64(fin: BinaryIO, fout: BinaryIO, chunk: ChunkInfo, body_bytes: int
 
 def _text(raw: bytes) -> str:
     return raw.split(b"\x00", 1)[0].decode("ascii", errors="replace")
+
+
+# ------------------------------------------------------------------- iXML tracks
+#
+# iXML (the open iXML specification, v2.x): a <TRACK_LIST> holds <TRACK_COUNT> and one
+# <TRACK> per track, each with <CHANNEL_INDEX> (the recorder's own track number),
+# <INTERLEAVE_INDEX> (1-based position of the track among this file's channels) and
+# <NAME>, plus optional elements such as <FUNCTION>. The payload is edited as text, not
+# re-serialised, so every byte outside TRACK_LIST stays as the recorder wrote it.
+
+_TRACK_LIST_RE = re.compile(r"<TRACK_LIST\b[^>]*>.*?</TRACK_LIST\s*>", re.DOTALL)
+_TRACK_RE = re.compile(r"<TRACK\b[^>]*>.*?</TRACK\s*>", re.DOTALL)
+_EMPTY_TRACK_LIST_RE = re.compile(r"<TRACK_LIST\s*/>")
+
+
+@dataclass(frozen=True)
+class IxmlTrack:
+    """One ``<TRACK>`` of an iXML ``TRACK_LIST``.
+
+    Attributes
+    ----------
+    channel_index : int or None
+        ``CHANNEL_INDEX``: the recorder's track number (None if absent or not a number).
+    interleave_index : int or None
+        ``INTERLEAVE_INDEX``: 1-based channel of the file holding this track.
+    name : str
+        ``NAME`` (XML entities decoded; empty if absent).
+    element : str
+        The whole ``<TRACK>...</TRACK>`` text as found, so elements liftmag does not
+        rewrite (``FUNCTION`` and others) survive a rewrite; empty for a new track.
+    """
+
+    channel_index: int | None
+    interleave_index: int | None
+    name: str
+    element: str = ""
+
+
+def _decode_ixml(payload: bytes) -> str:
+    # surrogateescape: odd bytes in a recorder's payload survive the round trip unchanged.
+    return payload.decode("utf-8", errors="surrogateescape")
+
+
+def _element_text(xml: str, tag: str) -> str | None:
+    match = re.search(rf"<{tag}\b[^>]*>(.*?)</{tag}\s*>", xml, re.DOTALL)
+    return None if match is None else _unescape(match.group(1).strip())
+
+
+def _element_int(xml: str, tag: str) -> int | None:
+    text = _element_text(xml, tag)
+    try:
+        return int(text) if text is not None else None
+    except ValueError:
+        return None
+
+
+def ixml_tracks(payload: bytes) -> tuple[IxmlTrack, ...] | None:
+    """The tracks an iXML payload's ``TRACK_LIST`` names, in document order.
+
+    Returns None when the payload has no ``TRACK_LIST`` (nothing describes the tracks).
+    """
+    xml = _decode_ixml(payload)
+    block = _TRACK_LIST_RE.search(xml)
+    if block is None:
+        return () if _EMPTY_TRACK_LIST_RE.search(xml) else None
+    return tuple(
+        IxmlTrack(
+            channel_index=_element_int(m.group(0), "CHANNEL_INDEX"),
+            interleave_index=_element_int(m.group(0), "INTERLEAVE_INDEX"),
+            name=_element_text(m.group(0), "NAME") or "",
+            element=m.group(0),
+        )
+        for m in _TRACK_RE.finditer(block.group(0))
+    )
+
+
+def rewrite_ixml_tracks(payload: bytes, tracks: Sequence[IxmlTrack]) -> bytes:
+    """Replace the ``TRACK_LIST`` so it describes ``tracks``, the output's channels in order.
+
+    ``TRACK_COUNT`` becomes ``len(tracks)``; track ``k`` (0-based) gets
+    ``INTERLEAVE_INDEX`` ``k + 1``, its own ``CHANNEL_INDEX`` (the recorder's track
+    number it came from) and ``NAME``; other elements of its ``element`` are kept. The
+    text before and after the ``TRACK_LIST`` is kept byte for byte. A payload without a
+    ``TRACK_LIST`` is returned unchanged: liftmag does not invent track metadata.
+    """
+    xml = _decode_ixml(payload)
+    block = _TRACK_LIST_RE.search(xml) or _EMPTY_TRACK_LIST_RE.search(xml)
+    if block is None:
+        return payload
+    indent = _indent_before(xml, block.start())
+    inner = indent + "\t"
+    parts = [f"<TRACK_LIST>\n{inner}<TRACK_COUNT>{len(tracks)}</TRACK_COUNT>"]
+    for position, track in enumerate(tracks, start=1):
+        parts.append(inner + _track_element(track, position, inner))
+    parts.append(f"{indent}</TRACK_LIST>")
+    new_block = "\n".join(parts)
+    return (xml[: block.start()] + new_block + xml[block.end():]).encode(
+        "utf-8", errors="surrogateescape"
+    )
+
+
+def _indent_before(xml: str, offset: int) -> str:
+    line_start = xml.rfind("\n", 0, offset) + 1
+    prefix = xml[line_start:offset]
+    return prefix if prefix.strip() == "" else ""
+
+
+def _track_element(track: IxmlTrack, position: int, indent: str) -> str:
+    values = {
+        "CHANNEL_INDEX": "" if track.channel_index is None else str(track.channel_index),
+        "INTERLEAVE_INDEX": str(position),
+        "NAME": _escape(track.name),
+    }
+    if not track.element:
+        body = "".join(
+            f"\n{indent}\t<{tag}>{value}</{tag}>" for tag, value in values.items() if value
+        )
+        return f"<TRACK>{body}\n{indent}</TRACK>"
+    element = track.element
+    for tag, value in values.items():
+        pattern = re.compile(rf"<{tag}\b[^>]*>.*?</{tag}\s*>|<{tag}\s*/>", re.DOTALL)
+        replacement = f"<{tag}>{value}</{tag}>"
+        if pattern.search(element):
+            element = pattern.sub(lambda _m, r=replacement: r, element, count=1)
+        elif value:
+            # Absent before: add it first inside <TRACK>, where the specification lists it.
+            head = re.match(r"<TRACK\b[^>]*>", element)
+            assert head is not None  # _TRACK_RE only matches elements that start so
+            element = element[: head.end()] + replacement + element[head.end():]
+    return element
+
+
+_XML_ESCAPES = (("&", "&amp;"), ("<", "&lt;"), (">", "&gt;"))
+
+
+def _escape(text: str) -> str:
+    for raw, entity in _XML_ESCAPES:
+        text = text.replace(raw, entity)
+    return text
+
+
+def _unescape(text: str) -> str:
+    text = text.replace("&quot;", '"').replace("&apos;", "'")
+    for raw, entity in reversed(_XML_ESCAPES):
+        text = text.replace(entity, raw)
+    return text
+
+
+# --------------------------------------------------------- bext coding history
+
+# EBU R 98 modes for M= (mono, stereo, dual-mono, joint-stereo); it has none for more
+# channels, so M= is left out there.
+_R98_MODES = {1: "mono"}
+
+
+def coding_history_line(
+    sample_rate_hz: int, word_length_bits: int, channels: int, text: str, *, mode: str = ""
+) -> str:
+    """One CodingHistory row in the EBU R 98 format, ending in CR LF.
+
+    ``A=PCM,F=<rate>,W=<bits>[,M=<mode>],T=<text>``. R 98 asks for plain ASCII and a
+    free text without commas, so commas and other characters are replaced. ``mode`` is
+    one of R 98's ``mono``, ``stereo``, ``dual-mono``, ``joint-stereo``; by default
+    ``mono`` for one channel and left out otherwise.
+    """
+    mode = mode or _R98_MODES.get(channels, "")
+    if mode and mode not in ("mono", "stereo", "dual-mono", "joint-stereo"):
+        raise ValueError(f"EBU R 98 has no mode {mode!r}")
+    clean = "".join(ch if 32 <= ord(ch) < 127 and ch != "," else " " for ch in text)
+    fields = ["A=PCM", f"F={int(sample_rate_hz)}", f"W={int(word_length_bits)}"]
+    if mode:
+        fields.append(f"M={mode}")
+    fields.append(f"T={' '.join(clean.split())}")
+    return ",".join(fields) + "\r\n"
+
+
+def append_coding_history(payload: bytes, line: str) -> bytes:
+    """A ``bext`` payload with ``line`` added at the end of its CodingHistory.
+
+    The 602 bytes of fixed fields (EBU Tech 3285: description, originator, time
+    reference, version, UMID, loudness, reserved) are kept byte for byte. Earlier
+    history rows are kept; NUL padding after them is dropped, and a last row without
+    its CR LF gets one so the new row starts on its own line.
+
+    Raises
+    ------
+    ValueError
+        If the payload is shorter than the fixed fields, or ``line`` is not one ASCII
+        row ending in CR LF.
+    """
+    if len(payload) < _BEXT_FIXED_BYTES:
+        raise ValueError(
+            f"bext chunk is {len(payload)} bytes; EBU Tech 3285 needs at least "
+            f"{_BEXT_FIXED_BYTES} bytes before CodingHistory"
+        )
+    if not line.endswith("\r\n") or "\r" in line[:-2] or "\n" in line[:-2] or not line.isascii():
+        raise ValueError("a CodingHistory row is one line of ASCII text ending in CR LF")
+    history = payload[_BEXT_FIXED_BYTES:].split(b"\x00", 1)[0]
+    if history and not history.endswith(b"\r\n"):
+        history = history.rstrip(b"\r\n") + b"\r\n"
+    return payload[:_BEXT_FIXED_BYTES] + history + line.encode("ascii")

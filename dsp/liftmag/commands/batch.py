@@ -14,6 +14,11 @@ from liftmag.commands.common import (
     print_json,
     stop_signals_as_interrupt,
 )
+from liftmag.commands.process import (
+    add_mics_argument,
+    offer_file_output_modes,
+    split_output_mode,
+)
 
 HELP = (
     "Clean many takes with one command: files, folders (searched recursively) and globs, "
@@ -29,7 +34,8 @@ HELP = (
     "Manifest columns: input, output (relative to --out), optional room_tone or "
     "noise_model (input, room-tone and model paths are relative to the manifest's "
     "folder), and any processing setting by its field name (e.g. estimator, "
-    "reduction_limit_db) to override the batch-wide value for that row. "
+    "reduction_limit_db) to override the batch-wide value for that row, and mics "
+    "(e.g. \"BOOM,LAV1\" or \"1,2\", quoted) to choose that take's microphones. "
     "With --cluster, takes go to an existing Dask scheduler instead of local processes "
     "(needs pip install 'liftmag[cluster]' on this machine and every worker): start one "
     "with `dask scheduler` (it prints its address, e.g. tcp://10.0.0.5:8786) and a "
@@ -72,13 +78,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--redo", action="store_true", help="process up-to-date takes again")
     parser.add_argument("--subtype", help="output subtype, e.g. PCM_24 or FLOAT (default: input's)")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    add_mics_argument(parser)
     add_settings_arguments(parser)
+    offer_file_output_modes(parser)
 
 
 def run(args: argparse.Namespace) -> int:
     from liftmag import batch
     from liftmag.cli import UserError
     from liftmag.settings import settings_fields
+    from liftmag.tracks import parse_mics
 
     out_dir = Path(os.path.abspath(args.out))
     base_values = {
@@ -86,16 +95,21 @@ def run(args: argparse.Namespace) -> int:
         for f in settings_fields()
         if getattr(args, f.name, None) is not None
     }
+    output_mode, same_tracks = split_output_mode(base_values.pop("output_mode", None))
+    if output_mode is not None:
+        base_values["output_mode"] = output_mode
     try:
+        mics = parse_mics(args.mics) if args.mics is not None else ()
         _check_request(args, base_values)
         plans = batch.check_outputs(
             _plans(args, out_dir), protected=[*(args.room_tone or ()), *filter(None, [
                 args.noise_model])],
         )
         resolver = batch.NoiseResolver(out_dir / batch.STATE_DIR_NAME)
-        batch_noise = _batch_noise(args, resolver, base_values)
+        batch_noise = _batch_noise(args, resolver, base_values, mics)
         jobs, refused = batch.build_jobs(
-            plans, base_values, batch_noise, resolver, subtype=args.subtype, redo=args.redo
+            plans, base_values, batch_noise, resolver, subtype=args.subtype, redo=args.redo,
+            mics=mics, same_tracks=same_tracks,
         )
         n_workers = min(args.jobs or batch.default_workers(), max(1, len(jobs)))
         options = batch.BatchOptions(
@@ -153,7 +167,9 @@ def _plans(args: argparse.Namespace, out_dir: Path):
     return batch.plan_from_selection(args.inputs, out_dir, args.group_by_suffix)
 
 
-def _batch_noise(args: argparse.Namespace, resolver, base_values: dict[str, Any]):
+def _batch_noise(
+    args: argparse.Namespace, resolver, base_values: dict[str, Any], mics: tuple[str, ...]
+):
     from liftmag.batch import NoiseSource
     from liftmag.settings import Settings
 
@@ -164,7 +180,7 @@ def _batch_noise(args: argparse.Namespace, resolver, base_values: dict[str, Any]
     else:
         return None
     # A bad batch-wide room tone would fail every take: refuse the batch at once.
-    return resolver.resolve(source, Settings(**base_values).frame_s)
+    return resolver.resolve(source, Settings(**base_values).frame_s, mics)
 
 
 class _progress:

@@ -25,6 +25,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--frame-s", type=float, default=None,
         help="STFT frame length; must match the one used when processing (default 0.128)",
     )
+    parser.add_argument(
+        "--mics", metavar="LIST",
+        help="learn only these tracks, by 1-based number or iXML track name, e.g. BOOM,LAV1: "
+             "the same tracks as `process --mics` (default: every track)",
+    )
     parser.add_argument("--force", action="store_true", help="replace an existing model file")
     parser.add_argument("--json", action="store_true", help="print a JSON summary on stdout")
 
@@ -39,8 +44,9 @@ def run(args: argparse.Namespace) -> int:
         write_atomically,
     )
     from liftmag.cli import UserError
-    from liftmag.fileproc import learn_noise, open_source
+    from liftmag.fileproc import learn_noise, mic_channels, open_source
     from liftmag.settings import Settings
+    from liftmag.tracks import parse_mics
 
     out = Path(args.output)
     try:
@@ -53,9 +59,11 @@ def run(args: argparse.Namespace) -> int:
     try:
         settings = Settings() if args.frame_s is None else Settings(frame_s=args.frame_s)
         source = open_source(args.inputs)
+        channels = mic_channels(source, parse_mics(args.mics)) if args.mics else None
         model = learn_noise(
             source, settings, args.region,
             description="learned from " + ", ".join(Path(p).name for p in args.inputs),
+            channels=channels,
         )
     except (AudioInputError, ValueError) as exc:
         raise UserError(str(exc)) from exc

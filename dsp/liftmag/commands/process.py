@@ -20,7 +20,10 @@ HELP = (
     "Clean dialogue in one take recorded with two or more microphones. Give one "
     "multichannel file, or one mono file per microphone (grouped in the order given). "
     "The output keeps the input's sample rate, length, format and subtype, and the "
-    "bext/iXML chunks of a broadcast WAV. " + CAUTION
+    "bext/iXML chunks of a broadcast WAV, rewritten to describe the output: the iXML "
+    "track list names the output's tracks and the bext coding history gains one line "
+    "saying what liftmag did. Choose the array's microphones among a take's tracks with "
+    "--mics (see them with `liftmag tracks FILE`). " + CAUTION
 )
 
 
@@ -40,7 +43,45 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--subtype", help="output subtype, e.g. PCM_24 or FLOAT (default: input's)")
     parser.add_argument("--force", action="store_true", help="replace an existing output")
     parser.add_argument("--json", action="store_true", help="print a JSON summary on stdout")
+    add_mics_argument(parser)
     add_settings_arguments(parser)
+    offer_file_output_modes(parser)
+
+
+def add_mics_argument(parser: argparse.ArgumentParser) -> None:
+    """``--mics LIST``, shared by ``process`` and ``batch`` (parsed by ``tracks.parse_mics``)."""
+    parser.add_argument(
+        "--mics", metavar="LIST",
+        help="the tracks that form the microphone array, in order, by 1-based number or "
+             "iXML track name, e.g. 1,2 or BOOM,LAV1 (default: every track). The first is "
+             "the reference; --reference-channel, if given, counts positions in this list "
+             "from 0. Other tracks (mix tracks) are not used by the estimate",
+    )
+
+
+def offer_file_output_modes(parser: argparse.ArgumentParser) -> None:
+    """Add the file-only output modes (``same-tracks``) to ``--output-mode``.
+
+    They are not engine settings (so not LV2 controls): the engine cleans the reference
+    as in ``cleaned`` mode and the file layer writes the other tracks around it.
+    """
+    from liftmag.tracks import FILE_OUTPUT_MODE_HELP, FILE_OUTPUT_MODES
+
+    action = next(a for a in parser._actions if a.dest == "output_mode")
+    action.choices = (*action.choices, *FILE_OUTPUT_MODES)
+    action.metavar = "{" + ",".join(action.choices) + "}"
+    action.help = (action.help or "") + ". " + "; ".join(
+        f"{mode}: {text}" for mode, text in FILE_OUTPUT_MODE_HELP.items()
+    )
+
+
+def split_output_mode(output_mode: str | None) -> tuple[str | None, bool]:
+    """``--output-mode`` -> (the engine's output mode, whether to write the same tracks)."""
+    from liftmag.tracks import SAME_TRACKS
+
+    if output_mode == SAME_TRACKS:
+        return "cleaned", True
+    return output_mode, False
 
 
 @stoppable("process")
@@ -53,18 +94,21 @@ def run(args: argparse.Namespace) -> int:
     )
     from liftmag.cli import UserError
     from liftmag.fileproc import load_noise_model, open_source, process_file
+    from liftmag.tracks import parse_mics
 
     learned = bool(args.noise_region or args.noise_model)
+    args.output_mode, same_tracks = split_output_mode(args.output_mode)
     # A learned model is held as learned unless the user asks the tracker to keep going.
     settings = settings_from_args(args, noise_mode=args.noise_mode or ("hold" if learned else None))
     try:
+        mics = parse_mics(args.mics) if args.mics is not None else ()
         source = open_source(args.inputs)
         model = load_noise_model(args.noise_model) if args.noise_model else None
         out = Path(args.output)
         refuse_destination(out, args.inputs, args.force)
         result = process_file(
             args.inputs, out, settings, noise_model=model, noise_regions_s=args.noise_region,
-            force=args.force, subtype=args.subtype,
+            force=args.force, subtype=args.subtype, mics=mics, same_tracks=same_tracks,
             progress=progress_bar("cleaning", source.frames, source.sample_rate_hz),
         )
     except OutputExistsError:
@@ -82,7 +126,7 @@ def run(args: argparse.Namespace) -> int:
     )
     print(
         f"wrote {result.output} ({result.channels_out} ch, {result.duration_s:.1f} s, "
-        f"{settings.estimator}, {settings.output_mode}{lifted}; noise: "
+        f"{settings.estimator}, {result.output_mode}{lifted}; noise: "
         f"{result.noise_source}; {result.realtime_factor:.0f}x real time)"
     )
     if settings.estimator == "auto" and result.lifted_share_by_band:
