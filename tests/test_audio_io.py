@@ -345,3 +345,20 @@ def test_truncated_inputs_give_clear_errors(tmp_path: Path, bwf: Path) -> None:
     assert sf.info(str(cut)).frames < 4801
     with pytest.raises(AudioInputError, match="truncated: its header declares 4801 frames"):
         probe(cut)
+
+
+def test_interrupt_while_the_temporary_file_is_being_made_leaves_nothing(
+    tmp_path: Path, monkeypatch
+) -> None:
+    # A SIGTERM turned into KeyboardInterrupt can land between creating the temporary file
+    # and handing it to the writer (found by the 50-round signal loop); nothing may remain.
+    from liftmag import audio_io
+
+    def interrupted(fd, path):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(audio_io, "_lock_if_still_there", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        with AtomicAudioWriter(tmp_path / "out.wav", sample_rate_hz=RATE_HZ, channels=2):
+            pass
+    assert list(tmp_path.iterdir()) == []

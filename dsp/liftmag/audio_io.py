@@ -915,8 +915,16 @@ def _create_temp(destination: Path) -> tuple[Path, int | None]:
             continue
         except OSError as exc:
             raise _output_error(destination, exc) from exc
-        if _lock_if_still_there(fd, temp):
-            return temp, fd
+        try:
+            if _lock_if_still_there(fd, temp):
+                return temp, fd
+        except BaseException:
+            # A signal (SIGTERM as KeyboardInterrupt) between creating and handing over the
+            # file: nobody else knows it yet, so remove it here.
+            with contextlib.suppress(OSError):
+                temp.unlink()
+            os.close(fd)
+            raise
         os.close(fd)  # a clean-up took it between creation and lock: make another
 
 
