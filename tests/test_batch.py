@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from liftmag import batch
+from liftmag import audio_io, batch
 from liftmag.cli import main
 from liftmag.scenes import demo_scene
 from liftmag.settings import Settings
@@ -113,7 +113,7 @@ def test_outputs_that_clash_or_hit_an_input_are_refused():
     ]
     checked = {p.label: p.problem for p in batch.check_outputs(plans)}
     assert "more than one take" in checked["a"] and "more than one take" in checked["b"]
-    assert "is an input of this batch" in checked["c"]
+    assert "is read by this batch" in checked["c"]
     assert checked["d"] == ""
 
 
@@ -219,7 +219,7 @@ def test_rerun_skips_up_to_date_takes_and_redoes_what_changed(tmp_path, capsys, 
     assert counts("--reduction-limit-db", "10") == (0, 3, 0)
     assert counts("--reduction-limit-db", "10", "--redo") == (3, 0, 0)
     # An output the batch did not make is never replaced silently.
-    batch.record_path(out / "t2.wav").unlink()
+    batch.record_path(out / "t2.wav", out).unlink()
     assert counts("--reduction-limit-db", "10") == (0, 2, 1)
     assert "not written by liftmag batch" in last_end(out)["failures"][0]["reason"]
 
@@ -372,11 +372,19 @@ def test_empty_selection_is_refused(tmp_path, capsys):
 # ----------------------------------------------------------- interruption (POSIX)
 
 
+def _as_a_foreground_job() -> None:
+    # A shell starts a foreground job with SIGINT at its default action; a background job
+    # of a non-interactive shell (`make test &`, some CI runners) inherits it ignored
+    # (POSIX.1-2017 Shell Command Language 2.11), and so would this batch without this.
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _start_batch(src: Path, out: Path, jobs: int) -> subprocess.Popen:
     return subprocess.Popen(
         [sys.executable, "-m", "liftmag.cli", "batch", str(src), "--out", str(out),
          "--jobs", str(jobs)],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        preexec_fn=_as_a_foreground_job,
     )
 
 
@@ -405,13 +413,39 @@ def _rerun_counts(src: Path, out: Path) -> dict:
     return json.loads(done.stdout)
 
 
-def test_sigint_part_way_leaves_no_partials_and_a_rerun_finishes(tmp_path, scene):
-    src, out, n = tmp_path / "in", tmp_path / "out", 14
-    for i in range(n):
-        write_take(src / f"t{i:02d}.wav", scene, 0.5 * i)
-    proc = _start_batch(src, out, jobs=1)
+def _stopped(pid: int) -> bool:
+    # Linux proc(5): the state (field 3 of /proc/PID/stat) is "T" for a stopped process.
+    with open(f"/proc/{pid}/stat") as fh:
+        return fh.read().rsplit(")", 1)[1].split()[0] == "T"
+
+
+def _signal_part_way(proc: subprocess.Popen, out: Path, n: int, signum: int) -> None:
+    """Deliver ``signum`` while at least one take is still to be handed out.
+
+    The batch is stopped first (SIGSTOP cannot be caught, POSIX); while stopped it cannot
+    hand out a take, so with fewer than n - 1 takes logged it cannot finish before the
+    signal is seen, however busy the machine. The signal is then sent and the batch
+    continued (SIGCONT): a pending signal is delivered on continuing.
+    """
     _wait_for(lambda: _taken(out) >= 2 and bool(partials(out)), proc)
-    proc.send_signal(signal.SIGINT)  # what Ctrl-C delivers (POSIX SIGINT)
+    os.kill(proc.pid, signal.SIGSTOP)
+    while not _stopped(proc.pid):
+        time.sleep(0.001)
+    assert _taken(out) < n - 1, "the batch was nearly done before it could be stopped"
+    os.kill(proc.pid, signum)
+    os.kill(proc.pid, signal.SIGCONT)
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").is_file(), reason="needs Linux /proc")
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM, signal.SIGHUP])
+def test_sigint_part_way_leaves_no_partials_and_a_rerun_finishes(tmp_path, scene, signum):
+    # SIGINT is what Ctrl-C delivers, SIGTERM what `kill PID` sends, SIGHUP a closed
+    # terminal (POSIX); the batch stops the same way for each.
+    src, out, n = tmp_path / "in", tmp_path / "out", 8
+    for i in range(n):
+        write_take(src / f"t{i:02d}.wav", scene, 0.5 * i, seconds=2.0)
+    proc = _start_batch(src, out, jobs=1)
+    _signal_part_way(proc, out, n, signum)
     stdout, _ = proc.communicate(timeout=60)
 
     assert proc.returncode == 130
@@ -472,3 +506,99 @@ def test_sigkilled_worker_fails_its_take_only_and_leaves_no_partial(tmp_path, sc
     assert 1 <= summary["done"] <= end["failed"]
     if kills == 1:
         assert (end["failed"], summary["done"]) == (1, 1)
+
+
+# ------------------------------------------------------------- nothing lost, delivery folders
+
+
+def test_delivery_folder_holds_the_outputs_only_and_resume_still_works(tmp_path, capsys, scene):
+    src, out = tmp_path / "in", tmp_path / "out"
+    write_take(src / "a.wav", scene, 0.0)
+    write_take(src / "sub" / "b.wav", scene, 1.0)
+    args = ["batch", str(src), "--out", str(out), "--jobs", "1", "--json"]
+    assert run_cli(capsys, *args)[0] == 0
+    delivered = sorted(
+        str(p.relative_to(out)) for p in out.rglob("*")
+        if p.is_file() and batch.STATE_DIR_NAME not in p.parts and p.name != batch.LOG_NAME
+    )
+    assert delivered == ["a.wav", "sub/b.wav"]  # no hidden record beside any output
+    rc, stdout, _ = run_cli(capsys, *args)
+    assert rc == 0 and json.loads(stdout)["skipped"] == 2
+    # A folder made by an earlier version (records beside the outputs) still resumes,
+    # and its hidden records are moved into the batch's own folder.
+    for name in ("a.wav", "sub/b.wav"):
+        new = batch.record_path(out / name, out)
+        os.replace(new, batch.record_path(out / name))
+    rc, stdout, _ = run_cli(capsys, *args)
+    assert rc == 0 and json.loads(stdout)["skipped"] == 2
+    write_take(src / "a.wav", scene, 2.0)
+    rc, stdout, _ = run_cli(capsys, *args)
+    assert rc == 0 and json.loads(stdout)["done"] == 1
+    assert not batch.record_path(out / "a.wav").exists()
+    assert batch.record_path(out / "a.wav", out).is_file()
+
+
+def test_manifest_shifted_cells_and_escaping_outputs_are_refused(tmp_path, capsys, scene):
+    media = tmp_path / "media"
+    write_take(media / "a.wav", scene, 0.0)
+    (media / "takes.csv").write_text(
+        "input,output,null_deg,reduction_limit_db\n"
+        "a.wav,ok.wav,,\n"
+        "a.wav,shifted.wav,20,160,\n"  # 20,160 unquoted: 160 lands in reduction_limit_db
+        "a.wav,../escaped.wav,,\n"
+        f"a.wav,{tmp_path / 'absolute.wav'},,\n"
+    )
+    out = tmp_path / "out"
+    rc, _, _ = run_cli(capsys, "batch", "--manifest", str(media / "takes.csv"), "--out",
+                       str(out), "--jobs", "1")
+    assert rc == 1
+    end = last_end(out)
+    assert (end["done"], end["failed"]) == (1, 3)
+    reasons = " | ".join(f["reason"] for f in end["failures"])
+    assert "put quotes around cells that contain commas" in reasons
+    assert reasons.count("leaves --out") == 2
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["media", "out"]
+    assert not (out / "shifted.wav").exists()
+
+
+def test_redo_never_writes_over_a_room_tone_or_noise_model(tmp_path, capsys, scene):
+    media = tmp_path / "media"
+    write_take(media / "a.wav", scene, 0.0)
+    sf.write(media / "tone.wav", scene.room_tone.T, FS, subtype="PCM_16")
+    assert run_cli(capsys, "learn", str(media / "tone.wav"), "-o", str(media / "m.npz"))[0] == 0
+    (media / "takes.csv").write_text(
+        "input,output,room_tone,noise_model\n"
+        "a.wav,tone.wav,tone.wav,\n"
+        "a.wav,m.npz,,m.npz\n"
+    )
+    before = {p.name: p.read_bytes() for p in media.iterdir()}
+    rc, _, _ = run_cli(capsys, "batch", "--manifest", str(media / "takes.csv"), "--out",
+                       str(media), "--redo", "--jobs", "1")
+    assert rc == 1 and last_end(media)["failed"] == 2
+    assert all((media / name).read_bytes() == data for name, data in before.items())
+    # The batch-wide room tone sits where the take's output would go.
+    tone_as_output = tmp_path / "o2" / "a.wav"
+    tone_as_output.parent.mkdir()
+    tone_as_output.write_bytes((media / "tone.wav").read_bytes())
+    rc, _, _ = run_cli(capsys, "batch", str(media / "a.wav"), "--out", str(tmp_path / "o2"),
+                       "--room-tone", str(tone_as_output), "--redo", "--jobs", "1")
+    assert rc == 1 and "read by this batch" in last_end(tmp_path / "o2")["failures"][0]["reason"]
+    assert tone_as_output.read_bytes() == before["tone.wav"]
+
+
+def test_start_up_sweep_leaves_another_writers_temporary_file(tmp_path, capsys, scene):
+    src, out = tmp_path / "in", tmp_path / "out"
+    write_take(src / "t0.wav", scene)
+    out.mkdir()
+    # `liftmag process` writing the same name into the same folder, mid-write.
+    writer = audio_io.AtomicAudioWriter(out / "t0.wav", sample_rate_hz=FS, channels=2,
+                                        force=True)
+    with writer:
+        writer.write(np.zeros((2, 100)))
+        temp = partials(out)
+        assert len(temp) == 1
+        assert run_cli(capsys, "batch", str(src), "--out", str(out), "--jobs", "1",
+                       "--redo")[0] == 0
+        assert temp[0].exists()  # the batch's sweeps left it alone
+        writer.write(np.zeros((2, 100)))
+    assert sf.info(str(out / "t0.wav")).frames == 200  # the other writer finished

@@ -149,7 +149,8 @@ def test_bad_inputs_get_one_line_errors_and_write_nothing(tmp_path, take, capsys
              "too little room tone", tmp_path)
     _refused(capsys, ["process", str(take), "-o", out, "--reduction-limit-db", "99"],
              "reduction_limit_db", tmp_path)
-    _refused(capsys, ["process", str(take), "-o", str(take)], "exists", tmp_path)
+    _refused(capsys, ["process", str(take), "-o", str(take)], "is an input file",
+             tmp_path)
 
 
 def test_mismatched_noise_model_is_refused_with_what_differs(tmp_path, scene, capsys):

@@ -11,9 +11,12 @@ import base64
 import io
 import json
 import math
+import os
 import random
 import re
 import shutil
+import signal
+import stat
 import struct
 from html.parser import HTMLParser
 from pathlib import Path
@@ -441,3 +444,59 @@ def test_existing_outputs_need_force_and_inputs_are_never_overwritten(scene, tmp
         capsys,
     )  # fmt: skip
     assert rc == 2 and "overwrite an input" in err
+
+
+def test_force_never_deletes_an_input_that_is_a_stale_blind_file(scene, tmp_path, capsys):
+    d, _ = scene
+    out = tmp_path / "cmp"
+    (out / "blind").mkdir(parents=True)
+    stale_input = out / "blind" / "take-9.wav"  # named like a blind file of an earlier run
+    shutil.copy(d / "lift.wav", stale_input)
+    before = stale_input.read_bytes()
+    rc, _, err = _run(
+        ["compare", str(d / "take.wav"), "--liftmag", str(stale_input), "--out", str(out),
+         "--force"],
+        capsys,
+    )  # fmt: skip
+    assert rc == 2 and "input" in err and len(err.strip().splitlines()) == 1
+    assert stale_input.read_bytes() == before
+
+
+def test_force_never_replaces_a_fifo_among_the_outputs(scene, tmp_path, capsys):
+    d, _ = scene
+    out = tmp_path / "cmp"
+    out.mkdir()
+    os.mkfifo(out / "report.md")
+    rc, _, err = _run(
+        ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out),
+         "--force"],
+        capsys,
+    )  # fmt: skip
+    # POSIX S_ISFIFO: the FIFO is still there, untouched.
+    assert rc == 2 and "not a regular file" in err
+    assert stat.S_ISFIFO(os.lstat(out / "report.md").st_mode)
+
+
+@pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGHUP])
+def test_sigterm_or_sighup_while_writing_leaves_nothing(scene, tmp_path, capsys, monkeypatch,
+                                                       signum):
+    from liftmag.commands import compare
+
+    d, _ = scene
+    out = tmp_path / "cmp"
+    real_text = compare._Staging.text
+    sent = []
+
+    def text_then_signal(self, final, text):
+        real_text(self, final, text)
+        if not sent:  # the signal arrives once some outputs are staged, none committed
+            sent.append(signum)
+            os.kill(os.getpid(), signum)  # POSIX kill(): delivered before kill() returns
+
+    monkeypatch.setattr(compare._Staging, "text", text_then_signal)
+    rc, _, err = _run(
+        ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out)],
+        capsys,
+    )  # fmt: skip
+    assert sent and rc == 128 + signum, err  # shells' 128 + N (common practice)
+    assert not out.exists() or list(out.rglob("*")) == []

@@ -12,9 +12,12 @@ errors about the destination are :class:`AudioOutputError`.
 from __future__ import annotations
 
 import contextlib
+import errno
 import math
 import os
 import secrets
+import stat
+import struct
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -26,16 +29,24 @@ import soundfile as sf
 from liftmag import riffchunks
 
 __all__ = [
+    "MAX_CHANNELS",
     "AtomicAudioWriter",
     "AudioGroup",
     "AudioInfo",
     "AudioInputError",
     "AudioOutputError",
+    "OutputExistsError",
     "WriteReport",
+    "carried_chunks",
     "open_group",
+    "output_container",
     "probe",
     "read_blocks",
+    "refuse_destination",
+    "remove_stale_temp",
+    "require_at_most_max_mics",
     "require_multichannel",
+    "temp_prefix",
 ]
 
 PathLike = str | os.PathLike[str]
@@ -44,6 +55,25 @@ PathLike = str | os.PathLike[str]
 _WAVE_FORMATS = frozenset({"WAV", "WAVEX", "RF64"})
 # Subtypes that store floating point: no full scale to clip at.
 _FLOAT_SUBTYPES = frozenset({"FLOAT", "DOUBLE"})
+# The most microphones liftmag takes. The lifted statistics grow as M**4 per bin (M**2 x M**2
+# real matrices): 16 channels at 16 kHz already hold about 0.5 GiB, 32 would need 8 GiB.
+MAX_CHANNELS = 16
+# Bytes per sample of the fixed-size PCM/float subtypes, to turn a declared size into frames.
+_SAMPLE_BYTES = {
+    "PCM_S8": 1, "PCM_U8": 1, "PCM_16": 2, "PCM_24": 3, "PCM_32": 4, "FLOAT": 4, "DOUBLE": 8,
+    "ULAW": 1, "ALAW": 1,
+}
+# Streaming writers leave these in a size field they could not go back and fill in.
+_UNKNOWN_SIZES = (0, 0xFFFFFFFF)
+# Output file name extension -> libsndfile container. ".wav" family keeps a WAVE input's own
+# container (WAV, WAVEX or RF64); the rest name one container each.
+_CONTAINERS = {
+    ".wav": "WAV", ".wave": "WAV", ".bwf": "WAV", ".rf64": "RF64", ".w64": "W64",
+    ".flac": "FLAC", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF", ".caf": "CAF",
+    ".ogg": "OGG", ".oga": "OGG", ".opus": "OGG", ".mp3": "MP3", ".au": "AU", ".snd": "AU",
+}
+# Longest file name most file systems take (ext4, XFS, btrfs, APFS: 255 bytes).
+_NAME_MAX_BYTES = 255
 
 
 class AudioInputError(ValueError):
@@ -52,6 +82,10 @@ class AudioInputError(ValueError):
 
 class AudioOutputError(ValueError):
     """The output cannot be written where or how it was asked."""
+
+
+class OutputExistsError(AudioOutputError):
+    """The output is an existing regular file (not an input) and replacing was not allowed."""
 
 
 @dataclass(frozen=True)
@@ -90,6 +124,9 @@ def probe(path: PathLike) -> AudioInfo:
         raise AudioInputError(f"{p}: no such file")
     if p.is_dir():
         raise AudioInputError(f"{p}: is a folder, not an audio file")
+    if not p.is_file():
+        # A FIFO or a device would block, or be read once and be gone the second time.
+        raise AudioInputError(f"{p}: not a regular file (a pipe or a device?); give an audio file")
     try:
         info = sf.info(str(p))
     except (sf.LibsndfileError, RuntimeError) as exc:
@@ -97,6 +134,9 @@ def probe(path: PathLike) -> AudioInfo:
         raise AudioInputError(
             f"{p}: cannot read this as audio (libsndfile says: {said})"
         ) from exc
+    except OSError as exc:
+        raise AudioInputError(f"{p}: cannot read it ({exc.strerror or exc})") from exc
+    _refuse_truncated(p, str(info.format), str(info.subtype), int(info.channels), info.frames)
     return AudioInfo(
         path=p,
         sample_rate_hz=int(info.samplerate),
@@ -106,6 +146,100 @@ def probe(path: PathLike) -> AudioInfo:
         format=str(info.format),
         duration_s=info.frames / info.samplerate,
     )
+
+
+def _refuse_truncated(path: Path, fmt: str, subtype: str, channels: int, frames: int) -> None:
+    """Refuse a file whose header promises more audio than the file holds.
+
+    libsndfile quietly shortens a cut WAV, AIFF or W64 to what is on disk, so a take cut
+    by a failed copy would come out short with no word said. The header's own size field
+    is the witness: RIFF 1.0 / EBU Tech 3306 ``data`` (and ``ds64``), AIFF ``COMM``
+    numSampleFrames (Apple AIFF 1.3, 1989), W64 ``data`` (64-bit size, 24-byte header),
+    and for Ogg the end-of-stream flag of the last page (RFC 3533, header_type 0x04).
+    """
+    try:
+        declared = _declared_frames(path, fmt, subtype, channels)
+        if fmt == "OGG" and _ogg_is_cut(path):
+            raise AudioInputError(
+                f"{path}: truncated: its last Ogg page does not end the stream (an "
+                "interrupted copy or a damaged file?)"
+            )
+    except (OSError, struct.error):
+        declared = None
+    if declared is not None and declared > frames:
+        raise AudioInputError(
+            f"{path}: truncated: its header declares {declared} frames but only {frames} "
+            "are in the file (an interrupted copy or a damaged file?)"
+        )
+
+
+def _declared_frames(path: Path, fmt: str, subtype: str, channels: int) -> int | None:
+    sample_bytes = _SAMPLE_BYTES.get(subtype)
+    with open(path, "rb") as fh:
+        size = os.fstat(fh.fileno()).st_size
+        head = fh.read(12)
+        if fmt in _WAVE_FORMATS and head[:4] in (b"RIFF", b"RF64", b"BW64"):
+            return _wave_declared_frames(fh, size, head[:4] != b"RIFF", sample_bytes, channels)
+        if fmt == "AIFF" and head[:4] == b"FORM":
+            return _aiff_declared_frames(fh, size)
+        if fmt == "W64" and sample_bytes:
+            return _w64_declared_frames(fh, size, sample_bytes * channels)
+    return None
+
+
+def _ogg_is_cut(path: Path) -> bool:
+    with open(path, "rb") as fh:
+        size = os.fstat(fh.fileno()).st_size
+        fh.seek(max(0, size - 65_536))
+        tail = fh.read()
+    last_page = tail.rfind(b"OggS")
+    return last_page >= 0 and last_page + 5 < len(tail) and not tail[last_page + 5] & 0x04
+
+
+def _wave_declared_frames(fh, size: int, is_rf64: bool, sample_bytes, channels: int):
+    offset, ds64_data, block_align = 12, None, None
+    while offset + 8 <= size:
+        fh.seek(offset)
+        chunk_id, chunk_size = struct.unpack("<4sI", fh.read(8))
+        if chunk_id == b"ds64" and is_rf64 and chunk_size >= 24:
+            ds64_data = struct.unpack("<QQ", fh.read(16))[1]
+        elif chunk_id == b"fmt " and chunk_size >= 16:
+            block_align = struct.unpack("<HHIIH", fh.read(14))[4]
+        elif chunk_id == b"data":
+            if is_rf64 and chunk_size == 0xFFFFFFFF:
+                chunk_size = ds64_data or 0
+            elif chunk_size in _UNKNOWN_SIZES:
+                return None
+            align = block_align or ((sample_bytes or 0) * channels)
+            return chunk_size // align if align else None
+        offset += 8 + chunk_size + (chunk_size & 1)
+    return None
+
+
+def _aiff_declared_frames(fh, size: int) -> int | None:
+    offset = 12
+    while offset + 8 <= size:
+        fh.seek(offset)
+        chunk_id, chunk_size = struct.unpack(">4sI", fh.read(8))
+        if chunk_id == b"COMM" and chunk_size >= 6:
+            return struct.unpack(">hI", fh.read(6))[1]
+        offset += 8 + chunk_size + (chunk_size & 1)
+    return None
+
+
+def _w64_declared_frames(fh, size: int, frame_bytes: int) -> int | None:
+    # Sony Wave64: 16-byte GUID ids (the first four bytes spell the RIFF id), 64-bit sizes
+    # that count the 24-byte header, chunks aligned to 8 bytes.
+    offset = 40
+    while offset + 24 <= size:
+        fh.seek(offset)
+        guid, chunk_size = struct.unpack("<16sQ", fh.read(24))
+        if guid[:4] == b"data":
+            return (chunk_size - 24) // frame_bytes if chunk_size >= 24 else None
+        if chunk_size < 24:
+            return None
+        offset += (chunk_size + 7) & ~7
+    return None
 
 
 @dataclass(frozen=True)
@@ -158,12 +292,13 @@ class AudioGroup:
         start_frame = 0
         with contextlib.ExitStack() as stack:
             files = [
-                stack.enter_context(sf.SoundFile(str(m.path))) for m in self.members
+                stack.enter_context(_open_for_reading(m.path)) for m in self.members
             ]
             while True:
-                parts = [
-                    f.read(block_frames, dtype="float64", always_2d=True) for f in files
-                ]
+                # Never past the length probed: a file that grows while read (a recorder
+                # still writing) gives the length every other step was planned for.
+                wanted = min(block_frames, self.frames - start_frame)
+                parts = [_read(f, m.path, wanted) for f, m in zip(files, self.members, strict=True)]
                 lengths = {len(part) for part in parts}
                 if len(lengths) > 1:
                     short = self.members[int(np.argmin([len(part) for part in parts]))]
@@ -172,6 +307,12 @@ class AudioGroup:
                         "while the other files in the group go on (damaged file?)"
                     )
                 frames = lengths.pop()
+                if frames == 0 and start_frame < self.frames:
+                    raise AudioInputError(
+                        f"{self.members[0].path}: ended at {start_frame} frames of the "
+                        f"{self.frames} it had when opened (cut or overwritten while "
+                        "being read?)"
+                    )
                 if frames == 0:
                     return
                 block = np.ascontiguousarray(np.concatenate(parts, axis=1).T)
@@ -194,6 +335,24 @@ class AudioGroup:
             f"{path}: {value} sample at {time_s:.6f} s (frame {start_frame + frame}), "
             f"channel {file_channel + 1}; audio must hold finite numbers only"
         )
+
+
+def _open_for_reading(path: Path) -> sf.SoundFile:
+    try:
+        return sf.SoundFile(str(path))
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        said = getattr(exc, "error_string", None) or getattr(exc, "strerror", None) or exc
+        raise AudioInputError(f"{path}: cannot read it any more ({said})") from exc
+
+
+def _read(f: sf.SoundFile, path: Path, frames: int) -> np.ndarray:
+    try:
+        return f.read(frames, dtype="float64", always_2d=True)
+    except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+        said = getattr(exc, "error_string", None) or getattr(exc, "strerror", None) or exc
+        raise AudioInputError(
+            f"{path}: damaged, cannot be read to its end (libsndfile says: {said})"
+        ) from exc
 
 
 def open_group(paths: Sequence[PathLike]) -> AudioGroup:
@@ -278,6 +437,22 @@ def read_blocks(
     else:
         group = AudioGroup((probe(source),))
     return group.read_blocks(block_frames, check_finite=check_finite)
+
+
+def require_at_most_max_mics(n_mics: int) -> None:
+    """Refuse more than :data:`MAX_CHANNELS` microphones, before any statistics are allocated.
+
+    Raises
+    ------
+    AudioInputError
+        Naming the limit and why it exists.
+    """
+    if n_mics > MAX_CHANNELS:
+        raise AudioInputError(
+            f"{n_mics} microphones: liftmag takes at most {MAX_CHANNELS} (its statistics grow "
+            "as the fourth power of the count); choose the microphones nearest the talker "
+            "(--mics)"
+        )
 
 
 def require_multichannel(source: AudioInfo | AudioGroup) -> None:
@@ -392,6 +567,7 @@ class AtomicAudioWriter:
         self._clips = self.subtype not in _FLOAT_SUBTYPES
         self._file: sf.SoundFile | None = None
         self._temp: Path | None = None
+        self._lock_fd: int | None = None
         self._frames = 0
         self._clipped = 0
         self._peak = 0.0
@@ -410,12 +586,15 @@ class AtomicAudioWriter:
             self._chunks, self._dropped = (), tuple(chunk_id for chunk_id, _ in found)
 
     def __enter__(self) -> AtomicAudioWriter:
-        self._temp = _create_temp(self.path)
+        self._temp, self._lock_fd = _create_temp(self.path)
         try:
             self._file = sf.SoundFile(
                 str(self._temp), "w", self.sample_rate_hz, self.channels,
                 self.subtype, format=self.format,
             )
+        except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+            self._discard()
+            raise _output_error(self.path, exc) from exc
         except BaseException:
             self._discard()
             raise
@@ -450,7 +629,10 @@ class AtomicAudioWriter:
                 self._clipped += int(over.sum())
                 # Clip here: whether libsndfile clips or wraps depends on its version/settings.
                 block = np.clip(block, -1.0, 1.0)
-        self._file.write(block.T)
+        try:
+            self._file.write(block.T)
+        except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+            raise _output_error(self.path, exc) from exc
         self._frames += block.shape[1]
 
     def __exit__(
@@ -464,6 +646,9 @@ class AtomicAudioWriter:
             return
         try:
             self._commit()
+        except (sf.LibsndfileError, RuntimeError, OSError) as exc:
+            self._discard()
+            raise _output_error(self.path, exc) from exc
         except BaseException:
             self._discard()
             raise
@@ -473,17 +658,21 @@ class AtomicAudioWriter:
         self._file.close()
         self._file = None
         if self._chunks:
-            chunked = _create_temp(self.path)
+            chunked, chunked_fd = _create_temp(self.path)
             try:
                 riffchunks.copy_with_chunks(self._temp, chunked, self._chunks)
             finally:
                 self._temp.unlink()
-                self._temp = chunked
+                _release(self._lock_fd)
+                self._temp, self._lock_fd = chunked, chunked_fd
         _fsync(self._temp)
-        if not self.force and self.path.exists():
+        if not self.force and os.path.lexists(self.path):
             raise AudioOutputError(f"{self.path} appeared while writing; not replacing it")
+        _refuse_special(self.path)
         os.replace(self._temp, self.path)
         self._temp = None
+        _release(self._lock_fd)
+        self._lock_fd = None
         self.report = WriteReport(
             frames_written=self._frames,
             clipped_samples=self._clipped,
@@ -501,24 +690,110 @@ class AtomicAudioWriter:
             with contextlib.suppress(FileNotFoundError):
                 self._temp.unlink()
             self._temp = None
+        _release(self._lock_fd)
+        self._lock_fd = None
 
     def _refuse_destination(self, members: Sequence[AudioInfo]) -> None:
-        folder = self.path.parent
-        if not folder.is_dir():
-            raise AudioOutputError(f"{self.path}: folder {folder} does not exist")
-        if not self.path.exists():
-            return
-        for m in members:
-            if m.path.exists() and os.path.samefile(m.path, self.path):
-                raise AudioOutputError(
-                    f"{self.path} is an input file; write the result to a new file"
-                )
-        if self.path.is_dir():
-            raise AudioOutputError(f"{self.path} is a folder")
-        if not self.force:
-            raise AudioOutputError(
-                f"{self.path} already exists; choose another name or allow overwriting"
-            )
+        refuse_destination(self.path, [m.path for m in members], self.force)
+
+
+def refuse_destination(path: Path, inputs: Sequence[PathLike], force: bool) -> None:
+    """Refuse to write ``path`` where that could lose something.
+
+    Never an input (whatever ``force`` says), never a folder, device, FIFO or socket
+    (``force`` replaces regular files only), never an existing file without ``force``, and
+    never into a missing folder or under a name the file system cannot hold.
+
+    Raises
+    ------
+    AudioOutputError
+        One line naming what is in the way.
+    """
+    folder = path.parent
+    if not folder.is_dir():
+        raise AudioOutputError(f"{path}: folder {folder} does not exist")
+    if len(os.fsencode(path.name)) > _NAME_MAX_BYTES:
+        raise AudioOutputError(
+            f"{path.name[:40]}...: file name of {len(os.fsencode(path.name))} bytes; file "
+            f"systems take at most {_NAME_MAX_BYTES}"
+        )
+    if not os.path.lexists(path):
+        return
+    for m in inputs:
+        if os.path.exists(m) and path.exists() and os.path.samefile(m, path):
+            raise AudioOutputError(f"{path} is an input file; write the result to a new file")
+    if path.is_dir():
+        raise AudioOutputError(f"{path} is a folder; give a file name for the output")
+    _refuse_special(path)
+    if not force:
+        raise OutputExistsError(
+            f"{path} already exists; choose another name or allow overwriting"
+        )
+
+
+def _refuse_special(path: Path) -> None:
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        return  # a new name, or a link to nothing (replacing the link loses nothing)
+    if not stat.S_ISREG(mode):
+        raise AudioOutputError(
+            f"{path} is not a regular file (a device, pipe or socket); liftmag writes "
+            "regular files only"
+        )
+
+
+def output_container(
+    path: PathLike, like: AudioInfo | AudioGroup | None
+) -> tuple[str, str | None, str]:
+    """Container and subtype for an output file, chosen by its name's extension.
+
+    Returns ``(format, subtype, note)``: the libsndfile container the extension names (a
+    ``.wav``-family name keeps a WAVE input's WAV, WAVEX or RF64), the input's subtype if
+    that container can hold it (else the nearest it can: 24-bit for float or wider PCM,
+    the container's default otherwise; ``None`` means "as the input"), and a one-line note
+    when the container or subtype differs from the input's ("" when nothing changed).
+
+    Raises
+    ------
+    AudioOutputError
+        For an extension that names no container liftmag writes.
+    """
+    p = Path(path)
+    members = _members(like)
+    ext = p.suffix.lower()
+    if ext not in _CONTAINERS or _CONTAINERS[ext] not in sf.available_formats():
+        known = " ".join(sorted(e for e, f in _CONTAINERS.items() if f in sf.available_formats()))
+        raise AudioOutputError(
+            f"{p}: cannot tell the audio format from the extension {ext or '(none)'!r}; "
+            f"use one of {known}"
+        )
+    container = _CONTAINERS[ext]
+    if not members:
+        return container, None, ""
+    first = members[0]
+    if container == "WAV" and first.format in _WAVE_FORMATS:
+        container = first.format
+    if container == first.format:
+        return container, None, ""
+    subtype = first.subtype
+    if ext == ".opus":
+        subtype = "OPUS"
+    elif not sf.check_format(container, subtype):
+        wide = subtype in _FLOAT_SUBTYPES or subtype in ("PCM_24", "PCM_32")
+        subtype = "PCM_24" if wide and sf.check_format(container, "PCM_24") else (
+            sf.default_subtype(container)
+        )
+    note = f"{first.format} {first.subtype} in, {container} {subtype} out (from the name {p.name})"
+    return container, subtype, note
+
+
+def _output_error(path: Path, exc: BaseException) -> AudioOutputError:
+    code = getattr(exc, "errno", None)
+    said = getattr(exc, "strerror", None) or getattr(exc, "error_string", None) or str(exc)
+    if code == errno.ENOSPC or "No space" in str(said):
+        said = "the disk is full"
+    return AudioOutputError(f"cannot write {path}: {said}; nothing was written")
 
 
 def _members(like: AudioInfo | AudioGroup | None) -> tuple[AudioInfo, ...]:
@@ -558,25 +833,142 @@ def _output_format(
 
 
 def _chunks_from(path: Path) -> tuple[tuple[str, bytes], ...]:
+    return carried_chunks(path)
+
+
+def carried_chunks(
+    path: PathLike, chunk_ids: Sequence[str] = riffchunks.CARRIED_CHUNK_IDS
+) -> tuple[tuple[str, bytes], ...]:
+    """``(id, payload)`` of these chunks in a WAVE input (see ``riffchunks.chunks_to_carry``),
+    also when its RIFF size field is one a streaming writer leaves (0 or 0xFFFFFFFF).
+
+    Raises
+    ------
+    AudioInputError
+        For a chunk list that is damaged (the audio itself was checked when probed).
+    """
     try:
-        return riffchunks.chunks_to_carry(path)
+        return riffchunks.chunks_to_carry(path, chunk_ids)
     except ValueError as exc:
+        found = _chunks_ignoring_riff_size(Path(path), chunk_ids)
+        if found is not None:
+            return found
         raise AudioInputError(
-            f"cannot carry the bext/iXML chunks of {path}: {exc} "
-            "(write without carrying chunks to go on)"
+            f"{path}: the audio reads in full, but the chunk list around it is damaged "
+            f"({exc}), so its bext/iXML metadata cannot be carried; re-export the file"
         ) from exc
 
 
-def _create_temp(destination: Path) -> Path:
+def _chunks_ignoring_riff_size(
+    path: Path, chunk_ids: Sequence[str]
+) -> tuple[tuple[str, bytes], ...] | None:
+    """Carried chunks of a RIFF WAVE whose RIFF size field is unusual, or None if damaged.
+
+    Streaming writers leave the RIFF size (and sometimes the data size) at 0 or 0xFFFFFFFF
+    because they cannot go back and fill it in; libsndfile then reads to the end of the file.
+    The chunks are walked to the end of the file instead (RIFF 1.0 layout); a data chunk of
+    unknown size runs to the end, so only chunks before it can be found.
+    """
+    found: dict[str, bytes] = {}
+    with open(path, "rb") as fh:
+        size = os.fstat(fh.fileno()).st_size
+        if fh.read(12)[:4] != b"RIFF":
+            return None
+        offset = 12
+        while offset + 8 <= size:
+            fh.seek(offset)
+            chunk_id, chunk_size = struct.unpack("<4sI", fh.read(8))
+            if chunk_id == b"data" and chunk_size in _UNKNOWN_SIZES:
+                break
+            if offset + 8 + chunk_size > size:
+                return None
+            name = chunk_id.decode("latin-1")
+            if name in chunk_ids and name not in found:
+                found[name] = fh.read(chunk_size)
+            offset += 8 + chunk_size + (chunk_size & 1)
+    return tuple((cid, found[cid]) for cid in chunk_ids if cid in found)
+
+
+def temp_prefix(destination: PathLike) -> str:
+    """Name prefix of the hidden temporary files of ``destination`` (``.NAME.partial-``).
+
+    Long names are cut so that the temporary name stays within what file systems take.
+    """
+    name = Path(destination).name
+    while len(os.fsencode(f".{name}.partial-00000000")) > _NAME_MAX_BYTES:
+        name = name[:-1]
+    return f".{name}.partial-"
+
+
+def _create_temp(destination: Path) -> tuple[Path, int | None]:
+    """A new, empty temporary file beside ``destination``, and a descriptor holding a lock.
+
+    The lock (``flock``, released by the kernel even when the process is killed) tells a
+    clean-up of stale temporary files (:func:`remove_stale_temp`) that this one is in use.
+    """
     # O_EXCL: never reuse someone else's file; mode 0o666 lets the umask decide.
     while True:
-        temp = destination.with_name(f".{destination.name}.partial-{secrets.token_hex(4)}")
+        temp = destination.with_name(temp_prefix(destination) + secrets.token_hex(4))
         try:
             fd = os.open(temp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
         except FileExistsError:
             continue
+        except OSError as exc:
+            raise _output_error(destination, exc) from exc
+        try:
+            if _lock_if_still_there(fd, temp):
+                return temp, fd
+        except BaseException:
+            # A signal (SIGTERM as KeyboardInterrupt) between creating and handing over the
+            # file: nobody else knows it yet, so remove it here.
+            with contextlib.suppress(OSError):
+                temp.unlink()
+            os.close(fd)
+            raise
+        os.close(fd)  # a clean-up took it between creation and lock: make another
+
+
+def _lock_if_still_there(fd: int, path: Path) -> bool:
+    try:
+        import fcntl
+    except ImportError:  # no POSIX advisory locks (Windows): no clean-up runs either
+        return True
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        return False
+    try:
+        return os.stat(path).st_ino == os.fstat(fd).st_ino
+    except FileNotFoundError:
+        return False
+
+
+def _release(fd: int | None) -> None:
+    if fd is not None:
+        with contextlib.suppress(OSError):
+            os.close(fd)
+
+
+def remove_stale_temp(path: PathLike) -> bool:
+    """Remove a temporary file left by a killed writer; leave one still being written.
+
+    Returns True if the file was removed. A writer holds a lock on its temporary file for
+    as long as it lives (see :func:`_create_temp`), so a file that cannot be locked belongs
+    to a live process, perhaps another liftmag writing into the same folder.
+    """
+    try:  # O_NONBLOCK: a FIFO that happens to carry such a name must not hang the sweep
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
+    except OSError:
+        return False
+    try:
+        if not _lock_if_still_there(fd, Path(path)):
+            return False
+        os.unlink(path)
+        return True
+    except FileNotFoundError:
+        return False
+    finally:
         os.close(fd)
-        return temp
 
 
 def _fsync(path: Path) -> None:
@@ -588,15 +980,25 @@ def _fsync(path: Path) -> None:
 
 
 def write_atomically(path: Path, data: bytes) -> None:
-    """Write to a hidden temporary file beside ``path`` and rename it over ``path``."""
-    temp = path.with_name(f".{path.name}.partial-{secrets.token_hex(4)}")
+    """Write to a hidden temporary file beside ``path`` and rename it over ``path``.
+
+    Raises :class:`AudioOutputError` (one line) if the file system refuses.
+    """
+    temp, lock_fd = _create_temp(path)
     try:
-        with open(temp, "xb") as fh:
+        with open(temp, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+        _refuse_special(path)
         os.replace(temp, path)
+    except OSError as exc:
+        with contextlib.suppress(FileNotFoundError):
+            temp.unlink()
+        raise _output_error(path, exc) from exc
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             temp.unlink()
         raise
+    finally:
+        _release(lock_fd)

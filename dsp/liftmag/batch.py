@@ -6,7 +6,8 @@ noise model, and the jobs run either on local worker processes or on an existing
 cluster. The worker entry point, :func:`run_job`, is the same on both: it checks the
 inputs, hashes them, skips the take if its output is up to date, and otherwise calls
 :func:`liftmag.fileproc.process_file` (which writes atomically) and leaves a small record
-beside the output so that the next run knows what made it.
+in the batch's own folder (``<out>/.liftmag-batch/records/``, mirroring the outputs) so
+that the next run knows what made it. Delivery folders hold the outputs only.
 
 Why a record per output rather than only the log: a worker that finishes after its batch
 was interrupted (a Dask task cannot be stopped half-way) still leaves a true account of
@@ -45,7 +46,8 @@ from liftmag.tracks import SAME_TRACKS, parse_mics
 LOG_NAME = "liftmag-batch.jsonl"
 STATE_DIR_NAME = ".liftmag-batch"  # learned noise models and the lock live here
 LOCK_NAME = "lock"
-RECORD_SUFFIX = ".liftmag-batch.json"
+RECORDS_DIR_NAME = "records"  # under STATE_DIR_NAME: one record per output, same tree
+RECORD_SUFFIX = ".liftmag-batch.json"  # beside each output, as runs before 0.x kept them
 RECORD_FORMAT = "liftmag-batch-record"
 RECORD_VERSION = 1
 HASH_CHUNK_BYTES = 1 << 20
@@ -115,6 +117,7 @@ class Job:
     redo: bool = False
     mics: tuple[str, ...] = ()
     same_tracks: bool = False
+    record: str = ""  # where the resume record lives (default: beside the output, as before)
 
 
 @dataclass(frozen=True)
@@ -423,8 +426,9 @@ def read_manifest(path: str | Path, out_dir: str | Path) -> list[TakePlan]:
     plans = []
     for number, cells in enumerate(rows[1:], start=2):
         plan = _manifest_row(dict(zip(header, cells, strict=False)), number, base, out)
-        if any(cell.strip() for cell in cells[len(header):]):
-            # Usually an unquoted comma, e.g. null_deg 20,160 written without quotes.
+        if len(cells) > len(header):
+            # Usually an unquoted comma, e.g. null_deg 20,160 written without quotes: later
+            # cells shift into the wrong columns even when the extra one is empty.
             plan = dataclasses.replace(plan, problem=(
                 f"the row has {len(cells)} cells but the first row names {len(header)} "
                 "columns (put quotes around cells that contain commas)"
@@ -464,6 +468,12 @@ def _manifest_row(row: dict[str, str], number: int, base: Path, out: Path) -> Ta
         problems.append("no input file in the 'input' column")
     if not output:
         problems.append("no output file in the 'output' column")
+    elif escapes(cells["output"]):
+        problems.append(
+            f"output {cells['output']!r} leaves --out; give a path inside it (no '..', not "
+            "absolute)"
+        )
+        output = ""
     noise = None
     if cells.get("room_tone") and cells.get("noise_model"):
         problems.append("give room_tone or noise_model, not both")
@@ -486,6 +496,12 @@ def _manifest_row(row: dict[str, str], number: int, base: Path, out: Path) -> Ta
     )
 
 
+def escapes(relative: str) -> bool:
+    """True if a manifest output path would land outside ``--out`` (absolute, or via ``..``)."""
+    path = Path(relative)
+    return path.is_absolute() or bool(path.drive) or ".." in Path(os.path.normpath(path)).parts
+
+
 def parse_setting(name: str, text: str) -> Any:
     """A manifest cell -> the Settings field's type (range checks come with Settings)."""
     f = next(f for f in settings_fields() if f.name == name)
@@ -504,9 +520,17 @@ def parse_setting(name: str, text: str) -> Any:
 # ---------------------------------------------------------------- plan checking
 
 
-def check_outputs(plans: Sequence[TakePlan]) -> list[TakePlan]:
-    """Refuse takes whose output is any input of the batch or is shared by two takes."""
-    all_inputs = {os.path.abspath(p) for plan in plans for p in plan.inputs}
+def check_outputs(plans: Sequence[TakePlan], protected: Sequence[str] = ()) -> list[TakePlan]:
+    """Refuse takes whose output is any file the batch reads or is shared by two takes.
+
+    Files read: every take's inputs, every row's room tone or noise model, and
+    ``protected`` (the batch-wide room tone or noise model).
+    """
+    all_inputs = {os.path.realpath(p) for plan in plans for p in plan.inputs}
+    all_inputs |= {
+        os.path.realpath(p) for plan in plans if plan.noise for p in plan.noise.paths
+    }
+    all_inputs |= {os.path.realpath(p) for p in protected}
     writers: dict[str, list[str]] = {}
     for plan in plans:
         if plan.output and not plan.problem:
@@ -515,8 +539,11 @@ def check_outputs(plans: Sequence[TakePlan]) -> list[TakePlan]:
     for plan in plans:
         problem = plan.problem
         target = os.path.abspath(plan.output) if plan.output else ""
-        if not problem and target in all_inputs:
-            problem = f"{plan.output} is an input of this batch; originals are never replaced"
+        if not problem and os.path.realpath(target) in all_inputs:
+            problem = (
+                f"{plan.output} is read by this batch (an input, room tone or noise model); "
+                "originals are never replaced"
+            )
         elif not problem and len(writers.get(target, ())) > 1:
             problem = (
                 f"{plan.output} would be written by more than one take ("
@@ -581,15 +608,30 @@ def take_key(
 # ------------------------------------------------------------------------ records
 
 
-def record_path(output: str | Path) -> Path:
+def record_path(output: str | Path, out_dir: str | Path | None = None) -> Path:
+    """Where the record of ``output`` lives: ``<out_dir>/.liftmag-batch/records/<same tree>``.
+
+    Without ``out_dir``, the hidden file beside the output that earlier versions wrote
+    (read once to resume their runs, then removed).
+    """
     out = Path(output)
-    return out.with_name(f".{out.name}{RECORD_SUFFIX}")
+    if out_dir is None:
+        return out.with_name(f".{out.name}{RECORD_SUFFIX}")
+    records = Path(out_dir) / STATE_DIR_NAME / RECORDS_DIR_NAME
+    relative = os.path.relpath(os.path.abspath(out), os.path.abspath(out_dir))
+    if escapes(relative):  # outputs all lie under --out; this is only a safe fallback
+        relative = hashlib.sha256(os.path.abspath(out).encode()).hexdigest()[:32]
+    return records / f"{relative}.json"
 
 
-def read_record(output: str | Path) -> dict[str, Any] | None:
-    """The record beside an output, or None if there is none (or it is unreadable)."""
+def _job_record(job: Job) -> Path:
+    return Path(job.record) if job.record else record_path(job.output)
+
+
+def read_record(path: str | Path) -> dict[str, Any] | None:
+    """The record stored at ``path``, or None if there is none (or it is unreadable)."""
     try:
-        data = json.loads(record_path(output).read_text(encoding="utf-8"))
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
     except (OSError, ValueError):
         return None
     return data if isinstance(data, dict) and data.get("format") == RECORD_FORMAT else None
@@ -603,7 +645,12 @@ def _write_record(output: Path, state: str, key: str, job: Job, **extra: Any) ->
         "noise_model": job.noise.path if job.noise else None,
         "written_at": time.strftime("%Y-%m-%dT%H:%M:%S%z"), **extra,
     }
-    audio_io.write_atomically(record_path(output), json.dumps(record, indent=1).encode())
+    target = _job_record(job)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    audio_io.write_atomically(target, json.dumps(record, indent=1).encode())
+    legacy = record_path(output)
+    if legacy != target and read_record(legacy) is not None:
+        legacy.unlink(missing_ok=True)  # an earlier version's record: now kept in one place
 
 
 def is_up_to_date(output: Path, record: dict[str, Any] | None, key: str) -> bool:
@@ -690,7 +737,9 @@ def build_jobs(
 
     ``mics`` and ``same_tracks`` are the batch-wide choices; a manifest's ``mics`` and
     ``output_mode`` cells override them for their take.
+    Each job's resume record goes under the resolver's state folder (``<out>/.liftmag-batch``).
     """
+    out_dir = resolver.state_dir.parent
     jobs: list[Job] = []
     refused: list[TakeRecord] = []
     for plan in plans:
@@ -714,6 +763,7 @@ def build_jobs(
                 label=plan.label, inputs=tuple(os.path.abspath(p) for p in plan.inputs),
                 output=os.path.abspath(plan.output), settings=settings, noise=noise,
                 subtype=subtype, redo=redo, mics=take_mics, same_tracks=take_same,
+                record=str(record_path(plan.output, out_dir)),
             )
         )
     return jobs, refused
@@ -786,7 +836,7 @@ def _run_job(job: Job, started: float) -> TakeRecord:
         tracks=_track_key(job),
     )
     out = Path(job.output)
-    previous = read_record(out)
+    previous = read_record(_job_record(job)) or read_record(record_path(out))
     if not job.redo and is_up_to_date(out, previous, key):
         return TakeRecord(
             job.label, "skipped", job.inputs, job.output, reason="up to date",
@@ -808,7 +858,7 @@ def _run_job(job: Job, started: float) -> TakeRecord:
         )
     except BaseException:
         if not out.exists():
-            record_path(out).unlink(missing_ok=True)
+            _job_record(job).unlink(missing_ok=True)
         raise
     st = out.stat()
     _write_record(
@@ -839,29 +889,29 @@ def _load_checked_model(ref: NoiseRef):
 # --------------------------------------------------------- partial files and lock
 
 
-def partial_files(outputs: Sequence[str | Path]) -> list[Path]:
-    """Hidden temporary files (``.NAME.partial-*``) of these outputs and their records."""
+def partial_files(targets: Sequence[str | Path]) -> list[Path]:
+    """Hidden temporary files (``.NAME.partial-*``) of these files (outputs, records)."""
     found: list[Path] = []
-    for output in outputs:
-        out = Path(output)
-        for target in (out, record_path(out)):
-            pattern = f".{glob.escape(target.name)}.partial-*"
-            found.extend(Path(p) for p in glob.glob(str(target.parent / pattern)))
+    for target in map(Path, targets):
+        pattern = glob.escape(audio_io.temp_prefix(target)) + "*"
+        found.extend(Path(p) for p in glob.glob(str(target.parent / pattern)))
     return found
 
 
-def sweep_partials(outputs: Sequence[str | Path]) -> int:
+def job_targets(jobs: Sequence[Job]) -> list[str]:
+    """Every file the jobs write: outputs and their records."""
+    return [job.output for job in jobs] + [str(_job_record(job)) for job in jobs]
+
+
+def sweep_partials(targets: Sequence[str | Path]) -> int:
     """Remove temporary files left by killed workers; returns how many were removed.
 
     A worker killed by SIGKILL (or the out-of-memory killer) cannot clean up after
     itself: POSIX gives it no chance to run code. The batch that owns the outputs does.
+    A temporary file still locked by its writer (``liftmag process`` writing the same
+    name into the same folder, say) is left alone: see :func:`audio_io.remove_stale_temp`.
     """
-    removed = 0
-    for path in partial_files(outputs):
-        with contextlib.suppress(FileNotFoundError):
-            path.unlink()
-            removed += 1
-    return removed
+    return sum(audio_io.remove_stale_temp(path) for path in partial_files(targets))
 
 
 @contextlib.contextmanager
@@ -1144,21 +1194,6 @@ class BatchOptions:
     subtype: str | None = None
 
 
-@contextlib.contextmanager
-def _sigterm_as_interrupt() -> Iterator[None]:
-    """``kill PID`` stops the batch like Ctrl-C does: workers stopped, no partial files."""
-    import threading
-
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-    previous = signal.signal(signal.SIGTERM, _raise_interrupt)
-    try:
-        yield
-    finally:
-        signal.signal(signal.SIGTERM, previous)
-
-
 def run_batch(
     jobs: Sequence[Job],
     refused: Sequence[TakeRecord],
@@ -1169,8 +1204,9 @@ def run_batch(
 ) -> BatchOutcome:
     """Run the jobs, log every outcome, and return the outcome.
 
-    On interruption (Ctrl-C / SIGTERM) the workers are stopped, every temporary file of
-    this batch's outputs is removed, and the outcome so far comes back marked
+    On interruption (``KeyboardInterrupt``: Ctrl-C, or SIGTERM/SIGHUP where the caller
+    turns them into it, as ``liftmag batch`` does) the workers are stopped, every temporary
+    file of this batch's outputs is removed, and the outcome so far comes back marked
     ``interrupted``; takes not reached count as not run.
     """
     started = time.perf_counter()
@@ -1178,7 +1214,7 @@ def run_batch(
     out_dir.mkdir(parents=True, exist_ok=True)
     log = BatchLog(out_dir / LOG_NAME)
     records: list[TakeRecord] = []
-    outputs = [job.output for job in jobs]
+    outputs = job_targets(jobs)
 
     def take_done(record: TakeRecord) -> None:
         records.append(record)
@@ -1189,7 +1225,7 @@ def run_batch(
         log.write("note", text=text)
         on_note(text)
 
-    with batch_lock(out_dir), _sigterm_as_interrupt():
+    with batch_lock(out_dir):
         sweep_partials(outputs)  # left by a run whose workers were killed
         log.write(
             "start", liftmag=__version__, takes=len(jobs) + len(refused),

@@ -29,6 +29,9 @@ from liftmag.settings import Settings
 
 BLOCK_FRAMES = 1 << 16
 MIN_FRAMES_OF_AUDIO = 4  # STFT frames a take must span to be worth processing
+# A channel whose peak stays below -120 dBFS holds no microphone signal: a live capsule's
+# self-noise through any preamp sits far above that (common practice; 24-bit LSB -138 dBFS).
+DEAD_CHANNEL_PEAK = 1e-6
 
 
 @dataclass(frozen=True)
@@ -121,6 +124,7 @@ def learn_noise(
     """
     fs = source.sample_rate_hz
     n_channels = source.channels if channels is None else len(channels)
+    audio_io.require_at_most_max_mics(n_channels)
     learner = NoiseLearner(fs, n_channels, settings)
     frame_s = learner.config.frame_length / fs
     if not regions_s:
@@ -138,7 +142,7 @@ def learn_noise(
                     f"({source.duration_s:.3f} s long)"
                 )
             regions.append((round(start_s * fs), round(end_s * fs)))
-    for lo, hi in regions:
+    for lo, hi in merge_regions(regions):
         learner.add_segment(_region_blocks(source, lo, hi, channels))
     if learner.frames < 2 * n_channels**2:
         raise audio_io.AudioInputError(
@@ -146,7 +150,26 @@ def learn_noise(
             f" s of usable noise (each region must be longer than {frame_s:.3f} s; a few "
             f"seconds at least, 30 s is ordinary location practice)"
         )
-    return learner.model(description)
+    model = learner.model(description)
+    silent = [c if channels is None else channels[c] for c in model.silent_channels()]
+    if silent:
+        raise audio_io.AudioInputError(
+            "the room tone is silent on channel(s) " + ", ".join(str(c + 1) for c in silent)
+            + " (digital silence: a dead or unplugged microphone?); record the room with "
+            "every microphone live"
+        )
+    return model
+
+
+def merge_regions(regions: Sequence[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Sorted, non-overlapping frame ranges: a stretch given twice is learned from once."""
+    merged: list[tuple[int, int]] = []
+    for lo, hi in sorted(regions):
+        if merged and lo <= merged[-1][1]:
+            merged[-1] = (merged[-1][0], max(merged[-1][1], hi))
+        else:
+            merged.append((lo, hi))
+    return merged
 
 
 def process_file(
@@ -185,6 +208,7 @@ def process_file(
     started = time.perf_counter()
     source = open_source(inputs)
     take = take_tracks(source, mics, settings, same_tracks)
+    audio_io.require_at_most_max_mics(len(take.mics))
     fs = source.sample_rate_hz
     warnings: list[str] = []
     if noise_regions_s:
@@ -224,11 +248,15 @@ def process_file(
             )
         proc = Processor(settings, fs, len(take.mics), noise_model, take_stats)
     out_tracks = tracks.output_tracks(take.tracks, take.mics, take.reference, take.mode)
+    container, container_subtype, container_note = audio_io.output_container(output, source)
+    if container_note and subtype is None:
+        warnings.append("output format: " + container_note)
     writer = audio_io.AtomicAudioWriter(
-        output, like=source, channels=len(out_tracks), subtype=subtype, force=force,
-        carry_chunks=False,
+        output, like=source, channels=len(out_tracks), format=container,
+        subtype=subtype or container_subtype, force=force, carry_chunks=False,
     )
     writer.use_chunks(_output_chunks(take, out_tracks, fs, writer.subtype, settings))
+    peaks = np.zeros(len(take.mics))
     with writer:
         sink = writer.write
         if same_tracks:
@@ -239,7 +267,7 @@ def process_file(
             blocks = _mic_blocks(source, take.mics)
         run_processor(
             proc,
-            blocks,
+            _track_peaks(blocks, peaks),
             total,
             progress=(
                 (lambda done: progress(((passes - 1) * total + done) // passes, total))
@@ -248,6 +276,14 @@ def process_file(
             sink=sink,
         )
     report = writer.report
+    dead = np.flatnonzero(peaks < DEAD_CHANNEL_PEAK)
+    if dead.size:
+        which = ", ".join(str(take.mics[c] + 1) for c in dead)
+        warnings.append(
+            (f"channel {which} is" if dead.size == 1 else f"channels {which} are")
+            + " silent throughout (a dead or unplugged microphone?): the estimators need "
+            "every microphone live, so this output is not a proper clean-up; leave it out"
+        )
     if report.clipped_samples:
         warnings.append(
             f"{report.clipped_samples} samples exceeded full scale (peak "
@@ -279,6 +315,12 @@ def _mic_blocks(source, mics: tuple[int, ...]):
     if mics == tuple(range(source.channels)):
         return blocks
     return (block[list(mics)] for block in blocks)
+
+
+def _track_peaks(blocks: Iterator[np.ndarray], peaks: np.ndarray) -> Iterator[np.ndarray]:
+    for block in blocks:
+        np.maximum(peaks, np.abs(block).max(axis=1, initial=0.0), out=peaks)
+        yield block
 
 
 def _geometry(fs: int, settings: Settings) -> tuple[int, int]:
@@ -372,12 +414,7 @@ def _output_chunks(
 ) -> tuple[tuple[str, bytes], ...]:
     """The reference file's bext/iXML, rewritten to describe the output (none invented)."""
     reference_file = take.tracks[take.mics[take.reference]].file
-    try:
-        found = riffchunks.chunks_to_carry(reference_file)
-    except ValueError as exc:
-        raise audio_io.AudioInputError(
-            f"cannot carry the bext/iXML chunks of {reference_file}: {exc}"
-        ) from exc
+    found = audio_io.carried_chunks(reference_file)
     line = riffchunks.coding_history_line(
         fs, tracks.word_length_bits(subtype), len(out_tracks),
         tracks.describe_run(

@@ -110,19 +110,61 @@ class NoiseModel:
                 lift2 = archive["lift_second_moment"]
         except Exception as exc:  # zip, key or JSON errors all mean "not our model"
             raise ValueError(f"not a liftmag noise model ({exc.__class__.__name__})") from exc
-        if meta.get("format") != FORMAT_NAME:
+        if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
             raise ValueError("not a liftmag noise model (format tag missing)")
-        if int(meta.get("format_version", 0)) > FORMAT_VERSION:
+        version = meta.get("format_version", 0)
+        if isinstance(version, (int, float)) and version > FORMAT_VERSION:
             raise ValueError(
                 f"noise model format version {meta['format_version']} is newer than this "
                 f"liftmag understands ({FORMAT_VERSION}); update liftmag"
             )
-        return cls(
-            covariance=cov, lift_second_moment=lift2, frames=float(meta["frames"]),
-            sample_rate_hz=float(meta["sample_rate_hz"]), frame_length=int(meta["frame_length"]),
-            hop=int(meta["hop"]), n_channels=int(meta["n_channels"]),
+        model = cls(
+            covariance=_checked_array(cov, "covariance", np.complexfloating),
+            lift_second_moment=_checked_array(lift2, "lift_second_moment", np.floating),
+            frames=_positive(meta, "frames", float),
+            sample_rate_hz=_positive(meta, "sample_rate_hz", float),
+            frame_length=_positive(meta, "frame_length", int),
+            hop=_positive(meta, "hop", int), n_channels=_positive(meta, "n_channels", int),
             description=str(meta.get("description", "")),
         )
+        if model.hop > model.frame_length:
+            raise ValueError(
+                f"damaged noise model: hop {model.hop} exceeds frame_length {model.frame_length}"
+            )
+        silent = model.silent_channels()
+        if silent:
+            raise ValueError(
+                "the noise model is silent on channel(s) "
+                + ", ".join(str(c + 1) for c in silent)
+                + " (learned from digital silence or a dead microphone); learn it again"
+            )
+        return model
+
+    def silent_channels(self) -> tuple[int, ...]:
+        """0-based channels with no noise power in any bin: digital silence, a dead mic."""
+        power = np.einsum("fmm->m", np.abs(self.covariance))
+        return tuple(int(c) for c in np.flatnonzero(power <= 0.0))
+
+
+def _positive(meta: dict, key: str, kind: type) -> float | int:
+    """A metadata number that must be finite and above zero, as ``kind``."""
+    value = meta.get(key)
+    ok = isinstance(value, (int, float)) and not isinstance(value, bool)
+    if ok and kind is int:
+        ok = float(value).is_integer()
+    if not ok or not np.isfinite(value) or value <= 0:
+        raise ValueError(
+            f"damaged noise model: metadata {key} is {value!r}, not a positive number"
+        )
+    return kind(value)
+
+
+def _checked_array(array: np.ndarray, name: str, kind: type) -> np.ndarray:
+    if not np.issubdtype(array.dtype, kind) and not np.issubdtype(array.dtype, np.floating):
+        raise ValueError(f"damaged noise model: {name} holds {array.dtype}, not numbers")
+    if array.ndim != 3 or not np.isfinite(array).all():
+        raise ValueError(f"damaged noise model: {name} is not a finite F x D x D array")
+    return array
 
 
 class MomentAccumulator:

@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from liftmag import riffchunks
+from liftmag import audio_io, riffchunks
 from liftmag.riffchunks import IxmlTrack
 
 if TYPE_CHECKING:
@@ -108,7 +108,7 @@ def source_tracks(source: AudioInfo | AudioGroup) -> tuple[Track, ...]:
 
 def _file_tracks(path: Path, channels: int) -> dict[int, IxmlTrack]:
     """0-based file channel -> its iXML TRACK, by INTERLEAVE_INDEX (or order, if absent)."""
-    chunks = dict(riffchunks.chunks_to_carry(path, ("iXML",)))
+    chunks = dict(audio_io.carried_chunks(path, ("iXML",)))
     listed = riffchunks.ixml_tracks(chunks["iXML"]) if "iXML" in chunks else None
     if not listed:
         return {}

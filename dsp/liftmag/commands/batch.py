@@ -8,7 +8,12 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from liftmag.commands.common import CAUTION, add_settings_arguments, print_json
+from liftmag.commands.common import (
+    CAUTION,
+    add_settings_arguments,
+    print_json,
+    stop_signals_as_interrupt,
+)
 from liftmag.commands.process import (
     add_mics_argument,
     offer_file_output_modes,
@@ -19,7 +24,8 @@ HELP = (
     "Clean many takes with one command: files, folders (searched recursively) and globs, "
     "or a CSV manifest with one row per take. Outputs mirror the input tree under --out, "
     "keep each input's format, and are written atomically; originals are only read. "
-    "A log of every take (JSON lines) is kept in DIR/liftmag-batch.jsonl. Running the "
+    "A log of every take (JSON lines) is kept in DIR/liftmag-batch.jsonl, and what made "
+    "each output in DIR/.liftmag-batch/ (nothing hidden sits beside the outputs). Running the "
     "same command again skips takes whose output was made from the same input bytes, "
     "settings, noise model and liftmag version (--redo forces them); Ctrl-C stops "
     "cleanly and leaves no partial files. Mono stems of one take are grouped by a "
@@ -95,7 +101,10 @@ def run(args: argparse.Namespace) -> int:
     try:
         mics = parse_mics(args.mics) if args.mics is not None else ()
         _check_request(args, base_values)
-        plans = batch.check_outputs(_plans(args, out_dir))
+        plans = batch.check_outputs(
+            _plans(args, out_dir), protected=[*(args.room_tone or ()), *filter(None, [
+                args.noise_model])],
+        )
         resolver = batch.NoiseResolver(out_dir / batch.STATE_DIR_NAME)
         batch_noise = _batch_noise(args, resolver, base_values, mics)
         jobs, refused = batch.build_jobs(
@@ -107,7 +116,8 @@ def run(args: argparse.Namespace) -> int:
             out_dir=out_dir, n_workers=n_workers, cluster=args.cluster, redo=args.redo,
             subtype=args.subtype,
         )
-        with _progress(len(jobs) + len(refused)) as on_record:
+        # `kill` (SIGTERM) and a closed terminal (SIGHUP) stop the batch as Ctrl-C does.
+        with stop_signals_as_interrupt(), _progress(len(jobs) + len(refused)) as on_record:
             outcome = batch.run_batch(
                 jobs, refused, options, on_record,
                 log_header={"settings": base_values, "argv": sys.argv[1:]},

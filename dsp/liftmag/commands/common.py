@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
+import functools
 import json
+import signal
 import sys
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import Any
 
 from liftmag.settings import ESTIMATOR_HELP, Settings, settings_fields
@@ -137,3 +140,54 @@ def settings_table_markdown() -> str:
             span = "on / off"
         lines.append(f"| {option} | {port} | {default} | {span} | {meta['help']} |")
     return "\n".join(lines)
+
+
+class Stopped(KeyboardInterrupt):
+    """SIGTERM or SIGHUP, raised where the process was so that writers remove their
+    temporary files on the way out, exactly as for Ctrl-C."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _raise_stopped(signum: int, frame: Any) -> None:
+    raise Stopped(signum)
+
+
+@contextlib.contextmanager
+def stop_signals_as_interrupt() -> Iterator[None]:
+    """Turn SIGTERM and SIGHUP into :class:`Stopped` while the block runs.
+
+    A signal the process was started with ignored (``nohup`` ignores SIGHUP) stays ignored:
+    whoever started us asked for that.
+    """
+    previous = {}
+    for signum in (signal.SIGTERM, signal.SIGHUP):
+        if signal.getsignal(signum) == signal.SIG_DFL:
+            previous[signum] = signal.signal(signum, _raise_stopped)
+    try:
+        yield
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+
+
+def stoppable(verb: str) -> Callable[[Callable[[argparse.Namespace], int]], Callable]:
+    """Decorate a verb's ``run``: SIGTERM/SIGHUP stop it cleanly, exit status 128 + N."""
+
+    def decorate(run: Callable[[argparse.Namespace], int]) -> Callable:
+        @functools.wraps(run)
+        def wrapper(args: argparse.Namespace) -> int:
+            try:
+                with stop_signals_as_interrupt():
+                    return run(args)
+            except Stopped as exc:
+                name = signal.Signals(exc.signum).name
+                print(f"liftmag {verb}: stopped by {name}; no partial output was left.",
+                      file=sys.stderr)
+                return 128 + exc.signum
+
+        return wrapper
+
+    return decorate

@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from liftmag.cli import UserError
+from liftmag.commands.common import stoppable
 
 HELP = """\
 Compare liftmag's output with other processed versions of the same take.
@@ -570,11 +571,26 @@ def _check_outputs(
 ) -> list[Path]:
     if out_dir.exists() and not out_dir.is_dir():
         raise UserError(f"--out {out_dir} exists and is not a folder")
+    from liftmag.audio_io import AudioOutputError, refuse_destination
+
     resolved_inputs = {p.resolve() for p in inputs}
     for p in planned:
         if p.resolve() in resolved_inputs:
             raise UserError(f"output {p} would overwrite an input; choose another --out")
     stale = _stale_takes(out_dir, planned)
+    for p in stale:
+        if p.resolve() in resolved_inputs:
+            # Replacing the blind set would delete it: an input is never deleted.
+            raise UserError(
+                f"input {p} is a blind file of an earlier comparison in {out_dir}; copy it "
+                "elsewhere first or choose another --out"
+            )
+    for p in planned + stale:
+        if p.parent.is_dir() and os.path.lexists(p):
+            try:  # --force replaces regular files only: never a folder, FIFO or device
+                refuse_destination(p, inputs, force=True)
+            except AudioOutputError as exc:
+                raise UserError(str(exc)) from None
     if not force:
         existing = [p for p in planned if p.exists()] + stale
         if existing:
@@ -620,6 +636,7 @@ def _reveal(key_path_text: str, as_json: bool) -> int:
     return 0
 
 
+@stoppable("compare")
 def run(args: argparse.Namespace) -> int:
     if args.reveal:
         return _reveal(args.reveal, args.json)

@@ -12,7 +12,8 @@ from __future__ import annotations
 
 import argparse
 import json
-import shutil
+import math
+import os
 import sys
 import time
 from pathlib import Path
@@ -40,6 +41,48 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--snr-db", type=float, default=0.0, help="input SNR (default: 0 dB)")
     parser.add_argument("--force", action="store_true", help="replace an existing demo folder")
     parser.add_argument("--json", action="store_true", help="print the scores as JSON")
+
+
+def _demo_names() -> frozenset[str]:
+    cleaned = {"mvdr.wav" if e == "mvdr" else f"cleaned-{e}.wav" for e in ESTIMATORS}
+    return frozenset({
+        "take.wav", "roomtone.wav", "clean-reference.wav", "noise-model.npz", "report.html",
+        "report.md", "scores.json", *cleaned,
+    })
+
+
+def _clear_demo_folder(out: Path, force: bool) -> None:
+    """Empty an earlier demo's folder for --force; refuse any folder holding other files.
+
+    Only files the demo writes are removed (and figures/*.png), so ``--out ~ --force`` or
+    a mistyped folder can never lose anything of the user's.
+    """
+    from liftmag.cli import UserError
+
+    if os.path.lexists(out) and not out.is_dir():
+        raise UserError(f"--out {out} is not a folder; give a folder for the demo")
+    if not out.is_dir() or not any(out.iterdir()):
+        return
+    if not force:
+        raise UserError(f"{out} exists and is not empty; add --force to replace the demo")
+    figures = out / "figures"
+    candidates = [p for p in out.iterdir() if p != figures]
+    if figures.is_dir() and not figures.is_symlink():
+        candidates += list(figures.iterdir())
+    elif os.path.lexists(figures):
+        candidates.append(figures)
+    for path in sorted(candidates):
+        names = _demo_names() if path.parent == out else None
+        mine = path.is_file() and not path.is_symlink() and (
+            path.name in names if names is not None else path.suffix == ".png"
+        )
+        if not mine:
+            raise UserError(
+                f"{out} holds {path.relative_to(out)}, which the demo did not write; "
+                "--force replaces a demo folder only: choose another --out"
+            )
+    for path in candidates:
+        path.unlink()
 
 
 def _write(path: Path, data: np.ndarray, fs: int) -> None:
@@ -95,14 +138,13 @@ def run(args: argparse.Namespace) -> int:
     from liftmag.settings import Settings
 
     started = time.perf_counter()
+    if not math.isfinite(args.snr_db):
+        raise UserError(f"--snr-db must be a finite number of dB, got {args.snr_db}")
     out = Path(args.out)
-    if out.exists():
-        if not args.force and any(out.iterdir()):
-            raise UserError(f"{out} exists and is not empty; add --force to replace the demo")
-        shutil.rmtree(out)
-    out.mkdir(parents=True)
+    _clear_demo_folder(out, args.force)
+    out.mkdir(parents=True, exist_ok=True)
     figures = out / "figures"
-    figures.mkdir()
+    figures.mkdir(exist_ok=True)
     print(f"liftmag demo: rendering the outdoor-interview scene (seed {args.seed}) ...",
           file=sys.stderr)
     scene = demo_scene(seed=args.seed, snr_db=args.snr_db, room_tone_s=ROOM_TONE_S)

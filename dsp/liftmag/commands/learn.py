@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from liftmag.commands.common import parse_region, print_json
+from liftmag.commands.common import parse_region, print_json, stoppable
 
 HELP = (
     "Learn a noise model from room tone (a recording of the location with nobody "
@@ -34,16 +34,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", action="store_true", help="print a JSON summary on stdout")
 
 
+@stoppable("learn")
 def run(args: argparse.Namespace) -> int:
-    from liftmag.audio_io import AudioInputError, write_atomically
+    from liftmag.audio_io import (
+        AudioInputError,
+        AudioOutputError,
+        OutputExistsError,
+        refuse_destination,
+        write_atomically,
+    )
     from liftmag.cli import UserError
     from liftmag.fileproc import learn_noise, mic_channels, open_source
     from liftmag.settings import Settings
     from liftmag.tracks import parse_mics
 
     out = Path(args.output)
-    if out.exists() and not args.force:
-        raise UserError(f"{out} exists; add --force to replace it")
+    try:
+        if out.parent.is_dir():  # a missing folder is made below
+            refuse_destination(out, args.inputs, args.force)
+    except OutputExistsError:
+        raise UserError(f"{out} exists; add --force to replace it") from None
+    except AudioOutputError as exc:
+        raise UserError(str(exc)) from None
     try:
         settings = Settings() if args.frame_s is None else Settings(frame_s=args.frame_s)
         source = open_source(args.inputs)
@@ -56,8 +68,13 @@ def run(args: argparse.Namespace) -> int:
     except (AudioInputError, ValueError) as exc:
         raise UserError(str(exc)) from exc
     data = model.to_bytes()
-    out.parent.mkdir(parents=True, exist_ok=True)
-    write_atomically(out, data)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        write_atomically(out, data)
+    except AudioOutputError as exc:
+        raise UserError(str(exc)) from None
+    except OSError as exc:
+        raise UserError(f"cannot write {out}: {exc.strerror or exc}") from None
     summary = {
         "output": str(out), "channels": model.n_channels, "sample_rate_hz": model.sample_rate_hz,
         "frames": model.frames, "duration_s": round(model.duration_s, 3),

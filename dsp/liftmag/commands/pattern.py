@@ -6,6 +6,7 @@ import argparse
 import json
 import sys
 from collections.abc import Sequence
+from pathlib import Path
 
 import numpy as np
 
@@ -96,6 +97,24 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print the patterns as JSON on stdout")
 
 
+# Image formats matplotlib's Agg back end writes (its savefig documentation).
+IMAGE_SUFFIXES = (".png", ".svg", ".pdf")
+
+
+def _check_out(out: Path) -> None:
+    from liftmag.audio_io import AudioOutputError, refuse_destination
+
+    if out.suffix.lower() not in IMAGE_SUFFIXES:
+        raise UserError(
+            f"--out {out}: the extension {out.suffix or '(none)'!r} is not an image format "
+            f"liftmag writes; use {', '.join(IMAGE_SUFFIXES)}"
+        )
+    try:  # replaces an earlier figure, never a folder, FIFO or device
+        refuse_destination(out, (), force=True)
+    except AudioOutputError as exc:
+        raise UserError(str(exc)) from None
+
+
 def _positions(args: argparse.Namespace) -> np.ndarray:
     from liftmag.geometry import as_positions_m, linear_array_m
 
@@ -176,6 +195,7 @@ def run(args: argparse.Namespace) -> int:
             f"unknown estimator(s) {', '.join(unknown) or '(none given)'}; choose from "
             f"{', '.join(PATTERN_ESTIMATORS)}"
         )
+    _check_out(Path(args.out))
     positions_m = _positions(args)
     m = positions_m.shape[0]
     if not (np.isfinite(args.frequency_hz) and args.frequency_hz > 0):

@@ -13,6 +13,7 @@ from liftmag.commands.common import (
     print_json,
     progress_bar,
     settings_from_args,
+    stoppable,
 )
 
 HELP = (
@@ -89,8 +90,14 @@ def split_output_mode(output_mode: str | None) -> tuple[str | None, bool]:
     return output_mode, False
 
 
+@stoppable("process")
 def run(args: argparse.Namespace) -> int:
-    from liftmag.audio_io import AudioInputError, AudioOutputError
+    from liftmag.audio_io import (
+        AudioInputError,
+        AudioOutputError,
+        OutputExistsError,
+        refuse_destination,
+    )
     from liftmag.cli import UserError
     from liftmag.fileproc import load_noise_model, open_source, process_file
     from liftmag.tracks import parse_mics
@@ -104,14 +111,15 @@ def run(args: argparse.Namespace) -> int:
         source = open_source(args.inputs)
         model = load_noise_model(args.noise_model) if args.noise_model else None
         out = Path(args.output)
-        if out.exists() and not args.force:
-            raise UserError(f"{out} exists; add --force to replace it")
+        refuse_destination(out, args.inputs, args.force)
         result = process_file(
             args.inputs, out, settings, noise_model=model, noise_regions_s=args.noise_region,
             force=args.force, subtype=args.subtype, mics=mics, same_tracks=same_tracks,
             whole_take=not args.one_pass,
             progress=progress_bar("cleaning", source.frames, source.sample_rate_hz),
         )
+    except OutputExistsError:
+        raise UserError(f"{out} exists; add --force to replace it") from None
     except (AudioInputError, AudioOutputError, ValueError) as exc:
         raise UserError(str(exc)) from exc
     for warning in result.warnings:
