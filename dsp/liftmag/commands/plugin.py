@@ -97,7 +97,7 @@ def _ensure_bundle(rebuild: bool) -> Path:
     except Exception as exc:  # compiler and cffi errors come in many classes
         raise UserError(
             f"building the plugin failed ({exc.__class__.__name__}: {exc}); it needs a C "
-            "compiler, the Python headers and lv2-dev (make system-deps)"
+            "compiler, the Python headers and the LV2 headers (Debian: gcc python3-dev lv2-dev)"
         ) from exc
 
 

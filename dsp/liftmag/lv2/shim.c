@@ -206,14 +206,16 @@ static int start_python_locked(void)
     } else {
         if (access(LIFTMAG_VENV_PYTHON, X_OK) != 0) {
             liftmag_logf("the Python environment of this plugin (%s) is missing or moved; "
-                         "audio passes through unprocessed. Rebuild and reinstall: "
-                         "make plugin && liftmag plugin install", LIFTMAG_VENV_PYTHON);
+                         "audio passes through unprocessed. Rebuild and reinstall from the "
+                         "environment to use: liftmag plugin install --rebuild",
+                         LIFTMAG_VENV_PYTHON);
             return 0;
         }
         if (!venv_matches()) {
             liftmag_logf("the Python environment %s was not made with Python %d.%d, which "
                          "this plugin was built for; audio passes through unprocessed. "
-                         "Rebuild and reinstall the plugin.", LIFTMAG_VENV_PYTHON,
+                         "Rebuild and reinstall: liftmag plugin install --rebuild",
+                         LIFTMAG_VENV_PYTHON,
                          PY_MAJOR_VERSION, PY_MINOR_VERSION);
             return 0;
         }
