@@ -135,3 +135,77 @@ def test_exports_only_the_lv2_entry_point(bundle: Path) -> None:
     exported = {line.split()[-1] for line in out.splitlines() if " T " in line}
     # LV2 core: a plugin library exports lv2_descriptor; cffi adds its module init.
     assert exported == {"lv2_descriptor", "PyInit__liftmag_lv2"}
+
+
+def _header(folder: Path) -> Path:
+    """The generated port header for this build's plugins and controls, in ``folder``."""
+    from liftmag.lv2 import build_shim
+
+    ttl = support.ttl_module()
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / build_shim.HEADER).write_text(build_shim.ports_header(
+        "/opt/liftmag-env/bin/python", [(uri, n) for uri, n, _ in ttl.PLUGINS],
+        ttl.control_ports(), ttl.STATE_KEY_URI, build_shim.BLOCK_FRAMES,
+        build_shim.libpython_dir()))
+    return folder
+
+
+def test_shim_compiles_alone_with_every_warning_an_error(tmp_path: Path) -> None:
+    import sysconfig
+
+    from liftmag.lv2 import build_shim
+
+    python_include = sysconfig.get_paths()["include"]
+    command = ["gcc", "-fsyntax-only", "-std=gnu11", "-Wall", "-Wextra", "-Werror",
+               f"-I{python_include}", str(build_shim.SHIM_SOURCE)]
+    # Without the header the file cannot compile: the baked-in values live only there.
+    bare = subprocess.run(command, capture_output=True, text=True)
+    assert bare.returncode != 0 and build_shim.HEADER in bare.stderr, bare.stderr
+    headers = _header(tmp_path / "include")
+    proc = subprocess.run([*command[:-1], f"-I{headers}", command[-1]], capture_output=True,
+                          text=True)
+    assert proc.returncode == 0 and not proc.stderr, proc.stderr
+
+
+PORT_PRINTER = r"""
+#include <stdio.h>
+#include "liftmag_ports.h"
+
+int main(void)
+{
+#define LIFTMAG_CONTROL(symbol, offset) printf("%s %s %d\n", uri, symbol, first_control + offset);
+#define LIFTMAG_PLUGIN(u, channels, first_input, first_output, control0, latency)          \
+    {                                                                                      \
+        const char *uri = u;                                                               \
+        const int first_control = control0;                                                \
+        for (int c = 0; c < channels; ++c) {                                               \
+            printf("%s in_%d %d\n", uri, c + 1, first_input + c);                          \
+            printf("%s out_%d %d\n", uri, c + 1, first_output + c);                        \
+        }                                                                                  \
+        LIFTMAG_CONTROLS                                                                   \
+        printf("%s latency %d\n", uri, latency);                                           \
+    }
+    LIFTMAG_PLUGINS
+    return 0;
+}
+"""
+
+
+def test_generated_header_has_the_port_indices_lilv_reads(env: dict[str, str],
+                                                          tmp_path: Path) -> None:
+    headers = _header(tmp_path / "include")
+    source, exe = tmp_path / "ports.c", tmp_path / "ports"
+    source.write_text(PORT_PRINTER)
+    subprocess.run(["gcc", "-Wall", "-Werror", f"-I{headers}", "-o", str(exe), str(source)],
+                   check=True)
+    lines = subprocess.run([str(exe)], capture_output=True, text=True,
+                           check=True).stdout.splitlines()
+    from_header: dict[str, dict[str, int]] = {}
+    for line in lines:
+        uri, symbol, index = line.split()
+        from_header.setdefault(uri, {})[symbol] = int(index)
+    # lilv (lv2info) reads the indices from the built bundle's TTL: the C side must use the
+    # very same numbers for every port of both plugins.
+    assert sorted(from_header) == sorted([support.URI_2CH, support.URI_4CH])
+    for uri, indices in from_header.items():
+        assert indices == support.port_indices(uri, env), uri

@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import json
+import os
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -84,3 +87,26 @@ def test_info_shows_the_latest_replaced_control_values(tmp_path: Path,
     assert main(["plugin", "info"]) == 0
     out = capsys.readouterr().out
     assert lines[-1] in out and lines[1] not in out and "unrelated" not in out
+
+
+@pytest.mark.parametrize("how", ["empty PATH", "CC not found"])
+def test_install_without_a_compiler_says_what_is_needed(how: str, tmp_path: Path) -> None:
+    # setuptools compiles with $CC, else with the compiler Python was built with, found on
+    # PATH: take either away and the build cannot run.
+    env = {k: v for k, v in os.environ.items() if k not in ("CC", "PYTHONPATH")}
+    env.update(HOME=str(tmp_path / "home"), XDG_CACHE_HOME=str(tmp_path / "cache"))
+    if how == "empty PATH":
+        (tmp_path / "bin").mkdir()
+        env["PATH"] = str(tmp_path / "bin")
+    else:
+        env["CC"] = "liftmag-test-no-such-cc"
+    dest = tmp_path / "lv2"
+    liftmag = Path(sys.executable).parent / "liftmag"
+    proc = subprocess.run([str(liftmag), "plugin", "install", "--rebuild", "--dest", str(dest)],
+                          env=env, capture_output=True, text=True, stdin=subprocess.DEVNULL,
+                          timeout=300)
+    assert proc.returncode == 2, proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1, proc.stderr
+    assert "needs a C compiler" in lines[0] and "missing: a C compiler" in lines[0]
+    assert not dest.exists() and not (tmp_path / "cache").exists()

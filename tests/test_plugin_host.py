@@ -204,3 +204,33 @@ def test_injected_faults_are_logged_not_fatal(fault: str, bundle: Path, host: Pa
     else:
         assert result.restore_status[(0, 0)] not in (-1, 0)
         assert "restoring the noise model failed" in log
+
+
+def test_host_without_features_gets_audio_and_a_state_refusal(bundle: Path, host: Path,
+                                                              tmp_path: Path) -> None:
+    # LV2 core: a host passes a NULL-terminated feature list, possibly empty, and a plugin
+    # must cope with every feature it lists as lv2:optionalFeature being absent (urid:map
+    # here). Without a URID map the state cannot name its key, so save() and restore() must
+    # refuse with LV2_STATE_ERR_NO_FEATURE (LV2 state extension, state.h) while the audio is
+    # the same as with every feature offered.
+    rate = 16000
+    x = _signal(2, 1.0, rate, seed=41, hostile=False)
+    saved = tmp_path / "with-map.state"
+    env = support.lv2_env(bundle.parent, tmp_path / "state")
+    offered = support.run_host(host, bundle, [support.Job(support.URI_2CH, rate, x, {},
+                                                          blocks="r7", save=saved)],
+                               tmp_path, env, tag="features")
+    assert offered.save_status[(0, 0)] == 0 and saved.is_file()
+
+    bare_env = dict(env, LV2HOST_FEATURES="none")
+    jobs = [support.Job(support.URI_2CH, rate, x, {}, blocks="r7",
+                        save=tmp_path / "no-map.state"),
+            support.Job(support.URI_2CH, rate, x, {}, blocks="r8", restore=saved)]
+    bare = support.run_host(host, bundle, jobs, tmp_path, bare_env, tag="no-features")
+    lv2_state_err_no_feature = 4  # LV2_STATE_ERR_NO_FEATURE in lv2/state/state.h
+    assert bare.save_status[(0, 0)] == lv2_state_err_no_feature
+    assert bare.restore_status[(1, 0)] == lv2_state_err_no_feature
+    assert not (tmp_path / "no-map.state").exists()
+    assert np.array_equal(bare.outputs[0][0], offered.outputs[0][0])
+    assert np.array_equal(bare.outputs[0][1], offered.outputs[0][0])
+    assert bare.latency[(0, 0)] == offered.latency[(0, 0)]

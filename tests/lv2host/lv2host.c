@@ -18,6 +18,8 @@
  * BLOCKS: "rN" random block sizes 1..8192 from seed N, or "fN" fixed blocks of N frames;
  * RESTORE / SAVE: state file to restore before activate() / save after the last run(),
  * or "-". Output files of round r > 0 get the suffix ".r<r>".
+ * With LV2HOST_FEATURES=none in the environment the host offers no features at all (an
+ * empty, NULL-terminated list, as LV2 core allows), to check what the plugin does then.
  * For every job it prints "job K round R latency L restore S save S instantiate_ms T
  * run_ms T worst_run_ms T", where S is the LV2_State_Status returned (-1: not asked for),
  * and the times are wall-clock milliseconds of instantiate(), of all run() calls, and of
@@ -92,7 +94,9 @@ static LV2_URID_Map map = {NULL, map_uri};
 static LV2_URID_Unmap unmap = {NULL, unmap_uri};
 static const LV2_Feature map_feature = {LV2_URID__map, &map};
 static const LV2_Feature unmap_feature = {LV2_URID__unmap, &unmap};
-static const LV2_Feature *features[] = {&map_feature, &unmap_feature, NULL};
+static const LV2_Feature *all_features[] = {&map_feature, &unmap_feature, NULL};
+static const LV2_Feature *no_features[] = {NULL};
+static const LV2_Feature *const *features = all_features;
 
 /* ----------------------------------------------------------------- state store */
 
@@ -402,6 +406,9 @@ int main(int argc, char **argv)
         return 2;
     }
     bundle_dir = argv[2];
+    const char *offered = getenv("LV2HOST_FEATURES");
+    if (offered && !strcmp(offered, "none"))
+        features = no_features;
     int n_threads = atoi(argv[4]), n_rounds = atoi(argv[5]);
     FILE *f = fopen(argv[3], "r");
     if (!f)

@@ -7,7 +7,6 @@ Imported by ``tests/test_plugin*.py`` as ``lv2host.support`` (pytest puts ``test
 from __future__ import annotations
 
 import atexit
-import importlib.util
 import os
 import re
 import shutil
@@ -20,7 +19,6 @@ from typing import Any
 
 import numpy as np
 
-REPO = Path(__file__).resolve().parents[2]
 HOST_SOURCE = Path(__file__).resolve().parent / "lv2host.c"
 LV2_TOOLS = ("lv2ls", "lv2info", "lv2apply", "lv2_validate", "sord_validate")
 URI_2CH = "urn:liftmag:dialogue-2ch"
@@ -37,17 +35,10 @@ def missing_tools() -> list[str]:
     missing = [t for t in LV2_TOOLS if shutil.which(t) is None]
     if shutil.which("gcc") is None:
         missing.append("gcc")
-    if not Path("/usr/include/lv2/core/lv2.h").is_file():
-        missing.append("LV2 headers (lv2-dev)")
     # Building the shim also needs Python's headers and shared library (Debian: python3-dev).
-    shim = build_module().plugin_module("build_shim")
-    if not shim.python_headers().is_file():
-        missing.append("Python.h (python3-dev)")
-    try:
-        shim.libpython_dir()
-    except RuntimeError:
-        missing.append("shared libpython (python3-dev)")
-    return missing
+    from liftmag.lv2 import build_shim
+
+    return missing + build_shim.missing_build_tools()
 
 
 def skip_reason() -> str:
@@ -56,29 +47,24 @@ def skip_reason() -> str:
             + " (install with `make system-deps`)") if missing else ""
 
 
-def _load(name: str, path: Path) -> Any:
-    if name in sys.modules:
-        return sys.modules[name]
-    spec = importlib.util.spec_from_file_location(name, path)
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[name] = module
-    spec.loader.exec_module(module)
-    return module
-
-
 def build_module() -> Any:
-    """``build/build_bundle.py`` as a module."""
-    return _load("liftmag_build_bundle", REPO / "build" / "build_bundle.py")
+    """The bundle builder (``liftmag.lv2.bundle``)."""
+    from liftmag.lv2 import bundle
+
+    return bundle
 
 
 def bridge_module() -> Any:
-    """``plugin/liftmag_lv2_bridge.py`` as a module (its pure-Python parts need no cffi)."""
-    return _load("liftmag_plugin_liftmag_lv2_bridge", REPO / "plugin" / "liftmag_lv2_bridge.py")
+    """The plugin's Python bridge (``liftmag.lv2.bridge``; its pure-Python parts need no cffi)."""
+    from liftmag.lv2 import bridge
+
+    return bridge
 
 
 def ttl_module() -> Any:
-    return build_module().plugin_module("ttl")
+    from liftmag.lv2 import ttl
+
+    return ttl
 
 
 _scratch = Path(tempfile.mkdtemp(prefix="liftmag-plugin-tests-"))

@@ -3,15 +3,15 @@
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import json
 import os
 import shutil
 import sys
 import tempfile
 from pathlib import Path
-from types import ModuleType
 from typing import Any
+
+from liftmag.lv2.bundle import BUILD_INFO, BUNDLE_NAME, read_build_info, source_digest
 
 HELP = (
     "Install the LV2 plugin (urn:liftmag:dialogue-2ch and -4ch) so audio editors that host "
@@ -20,10 +20,8 @@ HELP = (
     "and is not hard real-time capable."
 )
 
-BUNDLE_NAME = "liftmag.lv2"
-BUILD_INFO = "build-info.json"
 # Start of the plugin's log lines that list control values it did not take as they were
-# (plugin/liftmag_lv2_bridge.py writes them; a test checks that the two agree).
+# (liftmag/lv2/bridge.py writes them; a test checks that the two agree).
 CONTROLS_NOTE = "control values replaced"
 RECENT_NOTES = 5
 # lilv's default search path on Linux, used when LV2_PATH is unset (lilv, src/lilv_config.h).
@@ -34,8 +32,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     sub = parser.add_subparsers(dest="action", metavar="ACTION", required=True)
     install = sub.add_parser(
         "install", help="build the bundle if needed and copy it into an LV2 folder",
-        description="Build build/liftmag.lv2 if it is missing or older than the sources, "
-                    "then copy it to DEST/liftmag.lv2 (replacing an earlier liftmag install).",
+        description="Build the bundle if it is missing or older than the installed liftmag "
+                    "(in a source checkout build/liftmag.lv2, else in ~/.cache/liftmag), then "
+                    "copy it to DEST/liftmag.lv2 (replacing an earlier liftmag install). "
+                    "Building needs a C compiler, the Python headers and the LV2 headers.",
     )
     install.add_argument("--dest", type=Path, default=None,
                          help="LV2 folder to install into (default: ~/.lv2)")
@@ -56,7 +56,7 @@ def default_dest() -> Path:
 
 
 def log_file() -> Path:
-    """Where the plugin logs (the same rule as plugin/shim.c)."""
+    """Where the plugin logs (the same rule as liftmag/lv2/shim.c)."""
     state = os.environ.get("XDG_STATE_HOME", "")
     if state.startswith("/"):
         return Path(state) / "liftmag" / "lv2-plugin.log"
@@ -79,53 +79,25 @@ def lv2_search_path() -> list[Path]:
     return [Path(p).expanduser() for p in parts if p]
 
 
-def source_checkout() -> Path | None:
-    """The liftmag source tree this package runs from, if it has the plugin sources."""
-    import liftmag
-
-    repo = Path(liftmag.__file__).resolve().parent.parent
-    needed = (repo / "build" / "build_bundle.py", repo / "plugin" / "shim.c")
-    return repo if all(p.is_file() for p in needed) else None
-
-
-def _build_module(repo: Path) -> ModuleType:
-    spec = importlib.util.spec_from_file_location("liftmag_build_bundle",
-                                                  repo / "build" / "build_bundle.py")
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
-def read_info(bundle: Path) -> dict[str, Any] | None:
-    try:
-        return json.loads((bundle / BUILD_INFO).read_text())
-    except (OSError, ValueError):
-        return None
-
-
 def _ensure_bundle(rebuild: bool) -> Path:
     from liftmag.cli import UserError
+    from liftmag.lv2 import build_shim
+    from liftmag.lv2 import bundle as builder
 
-    repo = source_checkout()
-    if repo is None:
-        raise UserError(
-            "the plugin is built from a liftmag source checkout, and this installation has "
-            "none; clone the repository and run `make plugin` there"
-        )
-    builder = _build_module(repo)
-    bundle = builder.DEFAULT_OUT
-    if not rebuild and builder.is_current(bundle):
-        return bundle
-    if not Path("/usr/include/lv2/core/lv2.h").is_file():
-        raise UserError("the LV2 headers are missing; install lv2-dev (make system-deps)")
-    print(f"building {bundle} ...", file=sys.stderr)
+    out = builder.default_out()
+    if not rebuild and builder.is_current(out):
+        return out
+    missing = build_shim.missing_build_tools()
+    if missing:
+        raise UserError("building the plugin needs a C compiler, the Python headers and the "
+                        f"LV2 headers; missing: {', '.join(missing)}")
+    print(f"building {out} ...", file=sys.stderr)
     try:
-        return builder.build_bundle(bundle)
+        return builder.build_bundle(out)
     except Exception as exc:  # compiler and cffi errors come in many classes
         raise UserError(
             f"building the plugin failed ({exc.__class__.__name__}: {exc}); it needs a C "
-            "compiler, the Python headers and lv2-dev (make system-deps)"
+            "compiler, the Python headers and the LV2 headers (Debian: gcc python3-dev lv2-dev)"
         ) from exc
 
 
@@ -134,7 +106,7 @@ def install(bundle: Path, dest: Path) -> Path:
     from liftmag.cli import UserError
 
     target = dest / BUNDLE_NAME
-    if target.exists() and read_info(target) is None:
+    if target.exists() and read_build_info(target) is None:
         raise UserError(f"{target} exists and is not a liftmag bundle; not replacing it")
     dest.mkdir(parents=True, exist_ok=True)
     stage = Path(tempfile.mkdtemp(prefix=f".{BUNDLE_NAME}.", dir=dest))
@@ -161,7 +133,7 @@ def _bundles(dest: Path) -> list[Path]:
 
 def describe(bundle: Path) -> dict[str, Any]:
     """What ``liftmag plugin info`` reports for one bundle."""
-    info = read_info(bundle) or {}
+    info = read_build_info(bundle) or {}
     python = info.get("venv_python", "")
     record: dict[str, Any] = {
         "bundle": str(bundle),
@@ -174,10 +146,8 @@ def describe(bundle: Path) -> dict[str, Any]:
         "in_lv2_path": any(bundle.parent == p.resolve() for p in lv2_search_path()),
         "current": None,
     }
-    repo = source_checkout()
-    if repo is not None and python:
-        digest = _build_module(repo).source_digest(python)
-        record["current"] = digest == info.get("source_digest")
+    if python:
+        record["current"] = source_digest(python) == info.get("source_digest")
     return record
 
 
@@ -188,7 +158,7 @@ def run(args: argparse.Namespace) -> int:
     if args.action == "install":
         if args.bundle is not None:
             bundle = args.bundle.expanduser().resolve()
-            if read_info(bundle) is None:
+            if read_build_info(bundle) is None:
                 raise UserError(f"{bundle} is not a built liftmag bundle (no {BUILD_INFO})")
         else:
             bundle = _ensure_bundle(args.rebuild)
@@ -215,7 +185,7 @@ def run(args: argparse.Namespace) -> int:
         print(f"no liftmag bundle in {dest} or LV2_PATH; run `liftmag plugin install`")
     for r in records:
         state = {True: "yes", False: "no (run `liftmag plugin install` again)",
-                 None: "unknown (no source checkout)"}[r["current"]]
+                 None: "unknown (no interpreter recorded)"}[r["current"]]
         print(f"{r['bundle']}")
         print(f"  plugins:        {', '.join(r['plugins'])}")
         print(f"  built:          {r['built_at']} (liftmag {r['liftmag_version']})")

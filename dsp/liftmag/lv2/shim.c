@@ -1,9 +1,11 @@
 /* liftmag LV2 shim: the C side of the plugin.
  *
- * cffi compiles this file in embedding mode (see plugin/build_shim.py, which puts the
- * generated LIFTMAG_* definitions in front of it). It holds the static LV2 descriptors,
- * gathers audio into fixed blocks, and calls the Python bridge (liftmag_lv2_bridge.py)
- * through the extern "Python" functions declared below, one call per block.
+ * cffi compiles this file in embedding mode (see build_shim.py beside it). The values baked
+ * in at build time and the port indices come from the generated header liftmag_ports.h,
+ * so the file is complete on its own: a test compiles it alone with -Wall -Wextra -Werror.
+ * It holds the static LV2 descriptors, gathers audio into fixed blocks, and calls the
+ * Python bridge (bridge.py, copied into the bundle as liftmag_lv2_bridge.py) through the
+ * extern "Python" functions declared below, one call per block.
  *
  * Whatever goes wrong on the Python side (no interpreter, a moved environment, an
  * exception), the host gets the dry input delayed by the reported latency, and a line in
@@ -12,12 +14,17 @@
  * Not hard real-time: run() calls Python, which allocates and takes the GIL. Meant for
  * offline (render) use.
  */
+/* Python.h first, as the Python C API asks (cffi has already included it when it compiles
+   this file, and the include guard makes the second time a no-op). */
+#include <Python.h>
+
 #include <dlfcn.h>
 #include <errno.h>
 #include <math.h>
 #include <pthread.h>
 #include <pwd.h>
 #include <stdarg.h>
+#include <stdbool.h>
 #include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -29,18 +36,37 @@
 
 #include <lv2/atom/atom.h>
 #include <lv2/core/lv2.h>
+#include <lv2/core/lv2_util.h>
 #include <lv2/state/state.h>
 #include <lv2/urid/urid.h>
 
-/* Implemented in the bridge (cffi generates the C bodies further down this file). */
-static int64_t liftmag_py_instantiate(double rate, uint32_t n_channels, uint32_t block,
-                                      int32_t *engine_latency);
-static int liftmag_py_process(int64_t handle, const float *in, float *out, uint32_t n_frames,
-                              const float *controls, uint32_t n_controls);
-static int liftmag_py_activate(int64_t handle);
-static void liftmag_py_cleanup(int64_t handle);
-static int liftmag_py_save(int64_t handle, void *sink);
-static int liftmag_py_restore(int64_t handle, const char *data, size_t size);
+#include "liftmag_ports.h"
+
+#ifdef _CFFI_USE_EMBEDDING
+/* cffi pastes this file after its own prologue and generates the bodies of the bridge
+   callbacks further down; the functions the bridge calls are static like them. */
+#define LIFTMAG_BRIDGE_API static
+#else
+/* Compiled alone (a syntax and warning check): what cffi would generate is external. */
+#define LIFTMAG_BRIDGE_API
+int cffi_start_python(void);
+#endif
+
+/* Implemented in the bridge (cffi generates the C bodies). */
+LIFTMAG_BRIDGE_API int64_t liftmag_py_instantiate(double rate, uint32_t n_channels,
+                                                  uint32_t block, int32_t *engine_latency);
+LIFTMAG_BRIDGE_API int liftmag_py_process(int64_t handle, const float *in, float *out,
+                                          uint32_t n_frames, const float *controls,
+                                          uint32_t n_controls);
+LIFTMAG_BRIDGE_API int liftmag_py_activate(int64_t handle);
+LIFTMAG_BRIDGE_API void liftmag_py_cleanup(int64_t handle);
+LIFTMAG_BRIDGE_API int liftmag_py_save(int64_t handle, void *sink);
+LIFTMAG_BRIDGE_API int liftmag_py_restore(int64_t handle, const char *data, size_t size);
+
+/* Called by the bridge (declared in build_shim.CDEF). */
+LIFTMAG_BRIDGE_API void liftmag_log(const char *message);
+LIFTMAG_BRIDGE_API int liftmag_state_store(void *sink, const char *data, size_t size);
+LIFTMAG_BRIDGE_API const char *liftmag_bundle_dir(void);
 
 #define LIFTMAG_MAX_CHANNELS 16
 /* Engine latencies beyond this (samples) are refused as implausible (83 s at 192 kHz). The
@@ -87,7 +113,7 @@ static int log_dir(char *out, size_t size)
 }
 
 /* One line to stderr and to the log file. Exposed to the bridge through cffi. */
-static void liftmag_log(const char *message)
+LIFTMAG_BRIDGE_API void liftmag_log(const char *message)
 {
     char dir[4096], path[4200], stamp[64];
     time_t now = time(NULL);
@@ -127,7 +153,7 @@ static char g_bundle_dir[4096] = "";
 LV2_SYMBOL_EXPORT const LV2_Descriptor *lv2_descriptor(uint32_t index);
 
 /* Directory of this shared object (the bundle), for the bridge's sys.path. */
-static const char *liftmag_bundle_dir(void)
+LIFTMAG_BRIDGE_API const char *liftmag_bundle_dir(void)
 {
     return g_bundle_dir;
 }
@@ -180,14 +206,16 @@ static int start_python_locked(void)
     } else {
         if (access(LIFTMAG_VENV_PYTHON, X_OK) != 0) {
             liftmag_logf("the Python environment of this plugin (%s) is missing or moved; "
-                         "audio passes through unprocessed. Rebuild and reinstall: "
-                         "make plugin && liftmag plugin install", LIFTMAG_VENV_PYTHON);
+                         "audio passes through unprocessed. Rebuild and reinstall from the "
+                         "environment to use: liftmag plugin install --rebuild",
+                         LIFTMAG_VENV_PYTHON);
             return 0;
         }
         if (!venv_matches()) {
             liftmag_logf("the Python environment %s was not made with Python %d.%d, which "
                          "this plugin was built for; audio passes through unprocessed. "
-                         "Rebuild and reinstall the plugin.", LIFTMAG_VENV_PYTHON,
+                         "Rebuild and reinstall: liftmag plugin install --rebuild",
+                         LIFTMAG_VENV_PYTHON,
                          PY_MAJOR_VERSION, PY_MINOR_VERSION);
             return 0;
         }
@@ -237,7 +265,17 @@ static int liftmag_start_python(void)
 
 /* ---------------------------------------------------------------- the plugin */
 
+/* Where one plugin's ports are (from liftmag_ports.h, which has them from the TTL). */
 typedef struct {
+    uint32_t n_channels;
+    uint32_t first_input;
+    uint32_t first_output;
+    uint32_t first_control;
+    uint32_t latency;
+} PortLayout;
+
+typedef struct {
+    const PortLayout *layout;
     const float *in[LIFTMAG_MAX_CHANNELS];
     float *out[LIFTMAG_MAX_CHANNELS];
     const float *controls[LIFTMAG_N_CONTROLS];
@@ -257,7 +295,7 @@ typedef struct {
     LV2_URID urid_chunk;
 } Instance;
 
-static uint32_t channels_of(const LV2_Descriptor *descriptor);
+static const PortLayout *layout_of(const LV2_Descriptor *descriptor);
 
 static LV2_Handle instantiate(const LV2_Descriptor *descriptor, double rate,
                               const char *bundle_path, const LV2_Feature *const *features)
@@ -266,11 +304,17 @@ static LV2_Handle instantiate(const LV2_Descriptor *descriptor, double rate,
     Instance *self = (Instance *)calloc(1, sizeof(Instance));
     if (!self)
         return NULL; /* out of memory: nothing else can be done */
-    self->n_channels = channels_of(descriptor);
+    self->layout = layout_of(descriptor);
+    self->n_channels = self->layout->n_channels;
 
-    for (int i = 0; features && features[i]; ++i) {
-        if (!strcmp(features[i]->URI, LV2_URID__map))
-            self->map = (LV2_URID_Map *)features[i]->data;
+    /* Every feature is optional (the TTL lists urid:map as lv2:optionalFeature): without a
+       URID map the plugin runs, and only state save and restore report the missing
+       feature. A feature made required here must also move to lv2:requiredFeature. */
+    const char *missing = lv2_features_query(features, LV2_URID__map, &self->map, false, NULL);
+    if (missing) {
+        liftmag_logf("the host does not provide %s, which this plugin requires", missing);
+        free(self);
+        return NULL;
     }
     if (self->map) {
         self->urid_model = self->map->map(self->map->handle, LIFTMAG_STATE_KEY_URI);
@@ -314,14 +358,16 @@ static LV2_Handle instantiate(const LV2_Descriptor *descriptor, double rate,
 static void connect_port(LV2_Handle instance, uint32_t port, void *data)
 {
     Instance *self = (Instance *)instance;
+    const PortLayout *at = self->layout;
     const uint32_t nc = self->n_channels;
-    if (port < nc)
-        self->in[port] = (const float *)data;
-    else if (port < 2 * nc)
-        self->out[port - nc] = (float *)data;
-    else if (port < 2 * nc + LIFTMAG_N_CONTROLS)
-        self->controls[port - 2 * nc] = (const float *)data;
-    else if (port == 2 * nc + LIFTMAG_N_CONTROLS)
+    /* Unsigned differences: a port below the range wraps to a large number. */
+    if (port - at->first_input < nc)
+        self->in[port - at->first_input] = (const float *)data;
+    else if (port - at->first_output < nc)
+        self->out[port - at->first_output] = (float *)data;
+    else if (port - at->first_control < LIFTMAG_N_CONTROLS)
+        self->controls[port - at->first_control] = (const float *)data;
+    else if (port == at->latency)
         self->latency_port = (float *)data;
 }
 
@@ -433,7 +479,7 @@ typedef struct {
 } StoreSink;
 
 /* Called by the bridge during liftmag_py_save() with the noise model's bytes. */
-static int liftmag_state_store(void *sink_ptr, const char *data, size_t size)
+LIFTMAG_BRIDGE_API int liftmag_state_store(void *sink_ptr, const char *data, size_t size)
 {
     StoreSink *sink = (StoreSink *)sink_ptr;
     /* The chunk is an .npz archive: plain bytes that mean the same on any machine. */
@@ -495,21 +541,22 @@ static const void *extension_data(const char *uri)
 /* ---------------------------------------------------------------- descriptors */
 
 static const LV2_Descriptor descriptors[] = {
-#define LIFTMAG_PLUGIN(uri, channels) \
+#define LIFTMAG_PLUGIN(uri, channels, first_input, first_output, first_control, latency) \
     {uri, instantiate, connect_port, activate, run, deactivate, cleanup, extension_data},
     LIFTMAG_PLUGINS
 #undef LIFTMAG_PLUGIN
 };
 
-static const uint32_t descriptor_channels[] = {
-#define LIFTMAG_PLUGIN(uri, channels) channels,
+static const PortLayout layouts[] = {
+#define LIFTMAG_PLUGIN(uri, channels, first_input, first_output, first_control, latency) \
+    {channels, first_input, first_output, first_control, latency},
     LIFTMAG_PLUGINS
 #undef LIFTMAG_PLUGIN
 };
 
-static uint32_t channels_of(const LV2_Descriptor *descriptor)
+static const PortLayout *layout_of(const LV2_Descriptor *descriptor)
 {
-    return descriptor_channels[descriptor - descriptors];
+    return &layouts[descriptor - descriptors];
 }
 
 LV2_SYMBOL_EXPORT const LV2_Descriptor *lv2_descriptor(uint32_t index)

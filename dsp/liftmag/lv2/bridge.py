@@ -107,7 +107,7 @@ def settings_from_controls(values: Sequence[float | None], controls: Sequence[di
     base = Settings() if base is None else base
     if len(values) != len(controls):
         raise ValueError(f"{len(values)} control values for {len(controls)} ports: the "
-                         "bundle is inconsistent; rebuild it (make plugin)")
+                         "bundle is inconsistent; rebuild it (liftmag plugin install --rebuild)")
     notes: list[str] = []
     changes: dict[str, Any] = {}
     for value, port in zip(values, controls, strict=True):
