@@ -23,11 +23,11 @@ demo: $(STAMP)
 	$(BIN)/liftmag demo
 
 test: $(STAMP) system-deps
-	$(BIN)/ruff check dsp tests build benchmarks
+	$(BIN)/ruff check dsp plugin tests build benchmarks
 	$(BIN)/python -m pytest -q
 
 lint: $(STAMP)
-	$(BIN)/ruff check dsp tests build benchmarks
+	$(BIN)/ruff check dsp plugin tests build benchmarks
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run_all.py

@@ -83,11 +83,11 @@ def test_wheel_holds_every_subpackage_and_runs_from_an_empty_folder(
 
 def test_wheel_carries_the_plugin_sources(installed: Path, tmp_path: Path) -> None:
     where = run([installed / "bin" / "python", "-c",
-                 "import liftmag.lv2.bundle as b; print(b.PACKAGE); print(b.source_checkout())"],
+                 "import liftmag_lv2.bundle as b; print(b.HERE); print(b.source_checkout())"],
                 cwd=tmp_path)
     package, checkout = where.stdout.split()
     assert checkout == "None"  # an installed package builds from itself, not from a checkout
-    lv2 = Path(package) / "lv2"
+    lv2 = Path(package)
     for name in ("shim.c", "templates/plugin.ttl.in", "templates/manifest.ttl.in", "bridge.py",
                  "build_shim.py", "ttl.py", "bundle.py"):
         assert (lv2 / name).is_file(), name

@@ -139,7 +139,7 @@ def test_exports_only_the_lv2_entry_point(bundle: Path) -> None:
 
 def _header(folder: Path) -> Path:
     """The generated port header for this build's plugins and controls, in ``folder``."""
-    from liftmag.lv2 import build_shim
+    from liftmag_lv2 import build_shim
 
     ttl = support.ttl_module()
     folder.mkdir(parents=True, exist_ok=True)
@@ -153,7 +153,7 @@ def _header(folder: Path) -> Path:
 def test_shim_compiles_alone_with_every_warning_an_error(tmp_path: Path) -> None:
     import sysconfig
 
-    from liftmag.lv2 import build_shim
+    from liftmag_lv2 import build_shim
 
     python_include = sysconfig.get_paths()["include"]
     command = ["gcc", "-fsyntax-only", "-std=gnu11", "-Wall", "-Wextra", "-Werror",

@@ -36,7 +36,7 @@ def missing_tools() -> list[str]:
     if shutil.which("gcc") is None:
         missing.append("gcc")
     # Building the shim also needs Python's headers and shared library (Debian: python3-dev).
-    from liftmag.lv2 import build_shim
+    from liftmag_lv2 import build_shim
 
     return missing + build_shim.missing_build_tools()
 
@@ -48,21 +48,21 @@ def skip_reason() -> str:
 
 
 def build_module() -> Any:
-    """The bundle builder (``liftmag.lv2.bundle``)."""
-    from liftmag.lv2 import bundle
+    """The bundle builder (``liftmag_lv2.bundle``)."""
+    from liftmag_lv2 import bundle
 
     return bundle
 
 
 def bridge_module() -> Any:
-    """The plugin's Python bridge (``liftmag.lv2.bridge``; its pure-Python parts need no cffi)."""
-    from liftmag.lv2 import bridge
+    """The plugin's Python bridge (``liftmag_lv2.bridge``; its pure-Python parts need no cffi)."""
+    from liftmag_lv2 import bridge
 
     return bridge
 
 
 def ttl_module() -> Any:
-    from liftmag.lv2 import ttl
+    from liftmag_lv2 import ttl
 
     return ttl
 

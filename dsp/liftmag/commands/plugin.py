@@ -11,7 +11,7 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
-from liftmag.lv2.bundle import BUILD_INFO, BUNDLE_NAME, read_build_info, source_digest
+from liftmag_lv2.bundle import BUILD_INFO, BUNDLE_NAME, read_build_info, source_digest
 
 HELP = (
     "Install the LV2 plugin (urn:liftmag:dialogue-2ch and -4ch) so audio editors that host "
@@ -21,7 +21,7 @@ HELP = (
 )
 
 # Start of the plugin's log lines that list control values it did not take as they were
-# (liftmag/lv2/bridge.py writes them; a test checks that the two agree).
+# (plugin/liftmag_lv2/bridge.py writes them; a test checks that the two agree).
 CONTROLS_NOTE = "control values replaced"
 RECENT_NOTES = 5
 # lilv's default search path on Linux, used when LV2_PATH is unset (lilv, src/lilv_config.h).
@@ -80,9 +80,10 @@ def lv2_search_path() -> list[Path]:
 
 
 def _ensure_bundle(rebuild: bool) -> Path:
+    from liftmag_lv2 import build_shim
+    from liftmag_lv2 import bundle as builder
+
     from liftmag.cli import UserError
-    from liftmag.lv2 import build_shim
-    from liftmag.lv2 import bundle as builder
 
     out = builder.default_out()
     if not rebuild and builder.is_current(out):

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import hashlib
+import importlib.util
 import json
 import os
 import shutil
@@ -27,31 +28,32 @@ import time
 from pathlib import Path
 from typing import Any
 
-from liftmag.lv2 import build_shim, ttl
+from liftmag_lv2 import build_shim, ttl
 
-PACKAGE = Path(__file__).resolve().parents[1]  # the liftmag package folder
+HERE = Path(__file__).resolve().parent  # the liftmag_lv2 package folder
+CORE = Path(importlib.util.find_spec("liftmag").origin).parent  # the liftmag package folder
 BINARY = "liftmag_lv2.so"
 BUILD_INFO = "build-info.json"
 BUNDLE_NAME = "liftmag.lv2"
 
 # Everything whose change means the bundle must be rebuilt (relative to the package).
 SOURCES = (
-    "lv2/shim.c",
-    "lv2/build_shim.py",
-    "lv2/ttl.py",
-    "lv2/bridge.py",
-    "lv2/bundle.py",
-    "lv2/templates/manifest.ttl.in",
-    "lv2/templates/plugin.ttl.in",
-    "settings.py",
+    HERE / "shim.c",
+    HERE / "build_shim.py",
+    HERE / "ttl.py",
+    HERE / "bridge.py",
+    HERE / "bundle.py",
+    HERE / "templates" / "manifest.ttl.in",
+    HERE / "templates" / "plugin.ttl.in",
+    CORE / "settings.py",
 )
 
 
 def source_checkout() -> Path | None:
-    """The source tree this package runs from (``dsp/liftmag`` beside ``build/``), if any."""
-    repo = PACKAGE.parents[1]
+    """The source tree this package runs from (``plugin/liftmag_lv2`` beside ``build/``), if any."""
+    repo = HERE.parents[1]
     marks = (repo / "pyproject.toml", repo / "build" / "system-deps.sh")
-    return repo if PACKAGE.parent.name == "dsp" and all(p.is_file() for p in marks) else None
+    return repo if HERE.parent.name == "plugin" and all(p.is_file() for p in marks) else None
 
 
 def cache_dir() -> Path:
@@ -85,8 +87,8 @@ def default_python() -> str:
 def source_digest(venv_python: str) -> str:
     """Digest of the plugin sources and the interpreter path baked in."""
     h = hashlib.sha256(venv_python.encode())
-    for rel in SOURCES:
-        h.update(rel.encode() + b"\0" + (PACKAGE / rel).read_bytes() + b"\0")
+    for path in SOURCES:
+        h.update(path.name.encode() + b"\0" + path.read_bytes() + b"\0")
     return h.hexdigest()
 
 
@@ -131,7 +133,7 @@ def build_bundle(out: Path | None = None, venv_python: str | None = None,
         for uri, n_channels, stem in ttl.PLUGINS:
             (stage / f"{stem}.ttl").write_text(ttl.plugin_ttl(uri, n_channels, stem, ports))
         (stage / "ports.json").write_text(ttl.ports_json(build_shim.BLOCK_FRAMES))
-        shutil.copy2(PACKAGE / "lv2" / "bridge.py", stage / f"{build_shim.BRIDGE_MODULE}.py")
+        shutil.copy2(HERE / "bridge.py", stage / f"{build_shim.BRIDGE_MODULE}.py")
         info = {
             "liftmag_version": __version__,
             "venv_python": venv_python,
@@ -160,7 +162,7 @@ def build_bundle(out: Path | None = None, venv_python: str | None = None,
 
 
 def main(argv: list[str] | None = None) -> int:
-    """``python -m liftmag.lv2.bundle`` (``build/build_bundle.py`` calls this)."""
+    """``python -m liftmag_lv2.bundle`` (``build/build_bundle.py`` calls this)."""
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--out", type=Path, default=None,
                         help=f"bundle directory to write (default {default_out()})")
