@@ -27,6 +27,7 @@ import numpy as np
 import soundfile as sf
 
 from liftmag import riffchunks
+from liftmag.errors import LiftmagError
 
 __all__ = [
     "MAX_CHANNELS",
@@ -76,11 +77,11 @@ _CONTAINERS = {
 _NAME_MAX_BYTES = 255
 
 
-class AudioInputError(ValueError):
+class AudioInputError(LiftmagError, ValueError):
     """An input audio file is missing, unreadable, unsuitable or holds bad samples."""
 
 
-class AudioOutputError(ValueError):
+class AudioOutputError(LiftmagError, ValueError):
     """The output cannot be written where or how it was asked."""
 
 

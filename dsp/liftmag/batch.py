@@ -33,6 +33,7 @@ from pathlib import Path
 from typing import Any
 
 from liftmag import __version__, audio_io
+from liftmag.errors import LiftmagError
 from liftmag.fileproc import (
     learn_noise,
     load_noise_model,
@@ -64,7 +65,7 @@ WORKER_STOP_GRACE_S = 10.0  # time a stopped worker gets to remove its temporary
 INTERRUPTED_STATUS = 130  # exit status of a worker stopped by Ctrl-C (128 + SIGINT, shells' use)
 
 
-class BatchError(ValueError):
+class BatchError(LiftmagError, ValueError):
     """A problem with the batch as a whole (bad selection, manifest or option): one line."""
 
 

@@ -64,7 +64,7 @@ def _float_list(text: str) -> tuple[float, ...]:
 
 def settings_from_args(args: argparse.Namespace, **overrides: Any) -> Settings:
     """Build validated ``Settings`` from parsed options (unset options keep their defaults)."""
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
 
     values = {
         f.name: getattr(args, f.name)

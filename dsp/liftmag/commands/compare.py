@@ -27,8 +27,8 @@ from pathlib import Path
 
 import numpy as np
 
-from liftmag.cli import UserError
 from liftmag.commands.common import stoppable
+from liftmag.errors import UserError
 
 HELP = """\
 Compare liftmag's output with other processed versions of the same take.

@@ -98,7 +98,7 @@ def run(args: argparse.Namespace) -> int:
         OutputExistsError,
         refuse_destination,
     )
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
     from liftmag.fileproc import load_noise_model, open_source, process_file
     from liftmag.tracks import parse_mics
 
