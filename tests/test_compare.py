@@ -480,20 +480,21 @@ def test_force_never_replaces_a_fifo_among_the_outputs(scene, tmp_path, capsys):
 @pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGHUP])
 def test_sigterm_or_sighup_while_writing_leaves_nothing(scene, tmp_path, capsys, monkeypatch,
                                                        signum):
-    from liftmag.commands import compare
+    from liftmag.audio_io import StagedOutputs
 
     d, _ = scene
     out = tmp_path / "cmp"
-    real_text = compare._Staging.text
+    real_text = StagedOutputs.write_text
     sent = []
 
     def text_then_signal(self, final, text):
-        real_text(self, final, text)
+        staged = real_text(self, final, text)
         if not sent:  # the signal arrives once some outputs are staged, none committed
             sent.append(signum)
             os.kill(os.getpid(), signum)  # POSIX kill(): delivered before kill() returns
+        return staged
 
-    monkeypatch.setattr(compare._Staging, "text", text_then_signal)
+    monkeypatch.setattr(StagedOutputs, "write_text", text_then_signal)
     rc, _, err = _run(
         ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out)],
         capsys,

@@ -13,16 +13,14 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import hashlib
 import json
 import math
 import os
 import re
 import sys
-import tempfile
 import time
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -61,15 +59,6 @@ KEY_FORMAT_VERSION = 1
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,39}$")
 _RESERVED = {"original", "liftmag", "clean"}
 _TAKE_RE = re.compile(r"^take-[0-9]+\.wav$")
-
-
-def _current_umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
-_UMASK = _current_umask()
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -215,68 +204,14 @@ def _parse_regions(items: list[str]) -> list[tuple[float, float]]:
 # --------------------------------------------------------------------------- writing
 
 
-@dataclass
-class _Staging:
-    """Files staged under temporary names, renamed into place by :meth:`commit`."""
+def _stage_wav(staging, final: Path, x: np.ndarray, fs_hz: int) -> Path:
+    import soundfile as sf
 
-    made_dirs: list[Path] = field(default_factory=list)
-    staged: list[tuple[Path, Path]] = field(default_factory=list)  # (temp, final)
-
-    def ensure_dir(self, path: Path) -> None:
-        missing = []
-        p = path
-        while not p.exists():
-            missing.append(p)
-            p = p.parent
-        for d in reversed(missing):
-            d.mkdir()
-            self.made_dirs.append(d)
-
-    def _temp(self, final: Path) -> Path:
-        self.ensure_dir(final.parent)
-        fd, name = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part", dir=final.parent)
-        os.close(fd)
-        temp = Path(name)
-        # mkstemp makes the file private (0600); give it the usual permissions.
-        os.chmod(temp, 0o666 & ~_UMASK)
-        self.staged.append((temp, final))
-        return temp
-
-    def bytes(self, final: Path, data: bytes) -> None:
-        self._temp(final).write_bytes(data)
-
-    def text(self, final: Path, text: str) -> None:
-        self.bytes(final, text.encode("utf-8"))
-
-    def wav(self, final: Path, x: np.ndarray, fs_hz: int) -> Path:
-        import soundfile as sf
-
-        # 24-bit PCM: no float PEAK chunk (it carries a time stamp), and the
-        # quantisation error (about -144 dBFS) is far below anything audible.
-        temp = self._temp(final)
-        sf.write(str(temp), x, fs_hz, format="WAV", subtype="PCM_24")
-        return temp
-
-    def commit(self) -> None:
-        for temp, final in self.staged:
-            os.replace(temp, final)
-        self.staged.clear()
-
-    def rollback(self) -> None:
-        for temp, _ in self.staged:
-            with contextlib.suppress(OSError):
-                temp.unlink()
-        for d in reversed(self.made_dirs):
-            with contextlib.suppress(OSError):
-                d.rmdir()
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with path.open("rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
+    # 24-bit PCM: no float PEAK chunk (it carries a time stamp), and the
+    # quantisation error (about -144 dBFS) is far below anything audible.
+    temp = staging.file(final)
+    sf.write(str(temp), x, fs_hz, format="WAV", subtype="PCM_24")
+    return temp
 
 
 # --------------------------------------------------------------------------- formatting
@@ -613,13 +548,15 @@ def _reveal(key_path_text: str, as_json: bool) -> int:
         blind_dir = key_path.parent / key["blind_folder"]
     except (ValueError, KeyError, TypeError, UnicodeDecodeError):
         raise UserError(f"{key_path} is not a liftmag blind key") from None
+    from liftmag import audio_io
+
     result = []
     for label in sorted(takes, key=lambda t: int(re.sub(r"\D", "", t) or 0)):
         entry = takes[label]
         path = blind_dir / label
         if not path.is_file():
             status = "missing"
-        elif _sha256(path) != entry.get("sha256"):
+        elif audio_io.sha256_file(path) != entry.get("sha256"):
             status = "changed since the key was written"
         else:
             status = "ok"
@@ -742,7 +679,9 @@ def _write_all(out_dir, comparison, inputs, figures, labels, summary, stale, wit
     sections = _build_sections(comparison, inputs, figures, with_clean)
     title = "liftmag compare: " + inputs["original"].path.name
     fs = int(comparison.fs_hz)
-    staging = _Staging()
+    from liftmag import audio_io
+
+    staging = audio_io.StagedOutputs()
     try:
         staging.ensure_dir(out_dir)
         # Written in label order, so creation order (and inode numbers) follow
@@ -757,21 +696,21 @@ def _write_all(out_dir, comparison, inputs, figures, labels, summary, stale, wit
         for label in sorted(labels, key=lambda t: int(t.split("-")[1])):
             name = labels[label]
             path = out_dir / BLIND_DIR / f"{label}.wav"
-            temp = staging.wav(path, comparison.matched[name], fs)
+            temp = _stage_wav(staging, path, comparison.matched[name], fs)
             blind_paths.append(path)
             key["takes"][path.name] = {
                 "name": name,
                 "source": str(inputs[name].path.resolve()),
                 "gain_db": round(comparison.loudness.gain_db[name], 3),
-                "sha256": _sha256(temp),
+                "sha256": audio_io.sha256_file(temp),
             }
-        staging.text(out_dir / KEY_JSON, json.dumps(key, indent=2) + "\n")
+        staging.write_text(out_dir / KEY_JSON, json.dumps(key, indent=2) + "\n")
         for name, png in figures.items():
-            staging.bytes(out_dir / FIGURES_DIR / f"{name}.png", png)
-        staging.text(out_dir / REPORT_HTML, report.html_page(title, sections))
+            staging.write_bytes(out_dir / FIGURES_DIR / f"{name}.png", png)
+        staging.write_text(out_dir / REPORT_HTML, report.html_page(title, sections))
         image_paths = {name: f"{FIGURES_DIR}/{name}.png" for name in figures}
-        staging.text(out_dir / REPORT_MD, report.markdown_page(title, sections, image_paths))
-        staging.text(out_dir / SCORES_JSON, json.dumps(summary, indent=2) + "\n")
+        staging.write_text(out_dir / REPORT_MD, report.markdown_page(title, sections, image_paths))
+        staging.write_text(out_dir / SCORES_JSON, json.dumps(summary, indent=2) + "\n")
     except OSError as exc:
         staging.rollback()
         raise UserError(f"cannot write to {out_dir}: {exc.strerror or exc}") from None
