@@ -78,6 +78,7 @@ _CONTAINERS = {
     ".flac": "FLAC", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF", ".caf": "CAF",
     ".ogg": "OGG", ".oga": "OGG", ".opus": "OGG", ".mp3": "MP3", ".au": "AU", ".snd": "AU",
 }
+HASH_CHUNK_BYTES = 1 << 20  # sha256_file reads this much at a time
 # Longest file name most file systems take (ext4, XFS, btrfs, APFS: 255 bytes).
 _NAME_MAX_BYTES = 255
 
@@ -1018,7 +1019,7 @@ def sha256_file(path: PathLike) -> str:
     """Hex SHA-256 of a file's bytes, read in chunks so memory does not grow with the file."""
     digest = hashlib.sha256()
     with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
+        while chunk := fh.read(HASH_CHUNK_BYTES):
             digest.update(chunk)
     return digest.hexdigest()
 

@@ -41,7 +41,7 @@ from liftmag.fileproc import (
     open_source,
     process_file,
 )
-from liftmag.settings import Settings, settings_fields
+from liftmag.settings import Settings, noise_mode_given_learned, settings_fields
 from liftmag.tracks import SAME_TRACKS, parse_mics
 
 LOG_NAME = "liftmag-batch.jsonl"
@@ -51,7 +51,7 @@ RECORDS_DIR_NAME = "records"  # under STATE_DIR_NAME: one record per output, sam
 RECORD_SUFFIX = ".liftmag-batch.json"  # beside each output, as runs before 0.x kept them
 RECORD_FORMAT = "liftmag-batch-record"
 RECORD_VERSION = 1
-HASH_CHUNK_BYTES = 1 << 20
+HASH_CHUNK_BYTES = audio_io.HASH_CHUNK_BYTES
 # What a folder or glob picks up: formats libsndfile reads losslessly and can write back.
 AUDIO_SUFFIXES = frozenset(
     {".wav", ".wave", ".bwf", ".rf64", ".w64", ".flac", ".aif", ".aiff", ".aifc", ".caf"}
@@ -563,21 +563,16 @@ def take_settings(
     user chose a noise mode, so batch output matches process output bit for bit.
     """
     values = {**base_values, **dict(overrides)}
-    if has_noise_model and values.get("noise_mode") is None:
-        values["noise_mode"] = "hold"
+    mode = noise_mode_given_learned(values.get("noise_mode"), has_noise_model)
+    if mode is not None:
+        values["noise_mode"] = mode
     return Settings(**values)
 
 
 # ------------------------------------------------------------------------ hashing
 
 
-def sha256_file(path: str | Path) -> str:
-    """Hex sha256 of a file's bytes, read in chunks so memory does not grow."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while chunk := fh.read(HASH_CHUNK_BYTES):
-            digest.update(chunk)
-    return digest.hexdigest()
+sha256_file = audio_io.sha256_file  # one implementation; the name stays for callers
 
 
 def take_key(

@@ -234,3 +234,16 @@ class Settings:
 def settings_fields() -> tuple[dataclasses.Field, ...]:
     """The fields of :class:`Settings`, with their metadata, in declaration order."""
     return dataclasses.fields(Settings)
+
+
+def noise_mode_given_learned(noise_mode: str | None, learned: bool) -> str | None:
+    """The noise mode to run with: a learned model or region is held unless one is chosen.
+
+    Room tone the user pointed at is better than what the tracker finds on its own, so with a
+    learned model (``--noise-model``, ``--room-tone``, ``--noise-region``) the noise is held as
+    learned; an explicit ``noise_mode`` (``track`` to keep following the take) wins. Without a
+    learned model the choice is left to :class:`Settings`' default (None here).
+    """
+    if learned and noise_mode is None:
+        return "hold"
+    return noise_mode

@@ -79,14 +79,13 @@ def settings_from_args(args: argparse.Namespace, **overrides: Any) -> Settings:
 
 
 def parse_region(text: str) -> tuple[float, float]:
-    """``"START:END"`` in seconds -> (start, end)."""
+    """argparse type for ``START:END`` in seconds: :func:`liftmag.regions.parse_region`."""
+    from liftmag.regions import parse_region as parse
+
     try:
-        start, end = (float(part) for part in text.split(":"))
+        return parse(text)
     except ValueError as exc:
-        raise argparse.ArgumentTypeError(
-            f"a region is START:END in seconds, e.g. 0.5:4.0; got {text!r}"
-        ) from exc
-    return start, end
+        raise argparse.ArgumentTypeError(str(exc)) from None
 
 
 def progress_bar(label: str, total: int, unit_scale: float) -> Callable[[int, int], None] | None:

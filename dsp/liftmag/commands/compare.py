@@ -188,16 +188,14 @@ def _parse_versions(items: list[str]) -> list[tuple[str, str]]:
 
 
 def _parse_regions(items: list[str]) -> list[tuple[float, float]]:
+    from liftmag.regions import parse_region
+
     regions = []
     for item in items:
-        start, sep, end = item.partition(":")
         try:
-            a, b = float(start), float(end)
-        except ValueError:
-            raise UserError(f"--noise-region expects START:END in seconds, got {item!r}") from None
-        if not sep or not (math.isfinite(a) and math.isfinite(b)) or a < 0 or b <= a:
-            raise UserError(f"--noise-region {item!r}: need 0 <= START < END (seconds)")
-        regions.append((a, b))
+            regions.append(parse_region(item))
+        except ValueError as exc:
+            raise UserError(f"--noise-region: {exc}") from None
     return regions
 
 
