@@ -153,7 +153,7 @@ def full_run(scene, tmp_path_factory):
     out = tmp_path_factory.mktemp("run") / "cmp"
     argv = [
         "compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"),
-        "--version", f"other={d / 'other.wav'}", "--clean", str(d / "clean.flac"),
+        "--other", f"other={d / 'other.wav'}", "--clean", str(d / "clean.flac"),
         "--out", str(out), "--json",
     ]  # fmt: skip
     import contextlib
@@ -397,8 +397,8 @@ def test_bad_arguments_are_clear_errors(scene, tmp_path, run_cli):
     out = tmp_path / "cmp"
     base = ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out)]
     cases = [
-        (["--version", "nofile"], "NAME=FILE"),
-        (["--version", f"original={d / 'lift.wav'}"], "reserved"),
+        (["--other", "nofile"], "NAME=FILE"),
+        (["--other", f"original={d / 'lift.wav'}"], "reserved"),
         (["--channel", "5"], "out of range"),
         (["--noise-region", "3:2"], "START < END"),
         (["--noise-region", "40:41"], "beyond the original's end"),

@@ -34,7 +34,16 @@ def manifest_columns() -> tuple[str, ...]:
 
 
 def _column_name(header: str) -> str:
-    return header.strip().lower().replace("-", "_").replace(" ", "_")
+    name = header.strip().lower().replace("-", "_").replace(" ", "_")
+    # A setting may also be named as its command-line option is (prior_smoothing: smoothing).
+    return _SETTING_BY_OPTION.get(name, name)
+
+
+_SETTING_BY_OPTION = {
+    f.metadata["option"].replace("-", "_"): f.name
+    for f in settings_fields()
+    if f.metadata.get("option")
+}
 
 
 def read_manifest(path: str | Path, out_dir: str | Path) -> list[TakePlan]:

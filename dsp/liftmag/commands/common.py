@@ -18,8 +18,9 @@ CLI_HIDDEN_FIELDS = ("bypass",)  # a host control; on the command line, use pass
 
 
 def option_name(field_name: str) -> str:
-    """``reduction_limit_db`` -> ``--reduction-limit-db``."""
-    return "--" + field_name.replace("_", "-")
+    """``reduction_limit_db`` -> ``--reduction-limit-db``, or the field's own ``option``."""
+    meta = {f.name: f.metadata for f in settings_fields()}.get(field_name, {})
+    return "--" + (meta.get("option") or field_name.replace("_", "-"))
 
 
 def _describe(f: dataclasses.Field) -> str:
@@ -52,7 +53,12 @@ def add_settings_arguments(parser: argparse.ArgumentParser) -> None:
             kwargs["type"] = int
         else:
             kwargs["type"] = float
+        if meta.get("option") and "metavar" not in kwargs:
+            kwargs["metavar"] = meta["option"].upper().replace("-", "_")
         group.add_argument(option_name(f.name), **kwargs)
+        for old in meta.get("old_options", ()):
+            # The earlier spelling, same destination, hidden from --help (kept one release).
+            group.add_argument(f"--{old}", **{**kwargs, "help": argparse.SUPPRESS})
 
 
 def _float_list(text: str) -> tuple[float, ...]:

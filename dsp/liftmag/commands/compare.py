@@ -43,12 +43,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--liftmag", metavar="FILE", help="liftmag's output for this take")
     parser.add_argument(
-        "--version",
+        "--other",
         dest="versions",
         action="append",
         default=[],
         metavar="NAME=FILE",
         help="another processed version (repeatable); NAME: letters, digits, _ . -",
+    )
+    # The first spelling, kept hidden for one release: it read like the program's --version.
+    parser.add_argument(
+        "--version", dest="versions", action="append", default=[], help=argparse.SUPPRESS
     )
     parser.add_argument(
         "--clean",
@@ -149,16 +153,16 @@ def _parse_versions(items: list[str]) -> list[tuple[str, str]]:
     for item in items:
         name, sep, file = item.partition("=")
         if not sep or not file:
-            raise UserError(f"--version expects NAME=FILE, got {item!r}")
+            raise UserError(f"--other expects NAME=FILE, got {item!r}")
         if not _NAME_RE.match(name):
             raise UserError(
-                f"--version name {name!r}: use 1 to 40 letters, digits, '_', '.' or '-', "
+                f"--other name {name!r}: use 1 to 40 letters, digits, '_', '.' or '-', "
                 "starting with a letter or digit"
             )
         if name.lower() in _RESERVED:
-            raise UserError(f"--version name {name!r} is reserved; choose another")
+            raise UserError(f"--other name {name!r} is reserved; choose another")
         if any(name == n for n, _ in out):
-            raise UserError(f"--version name {name!r} is given twice")
+            raise UserError(f"--other name {name!r} is given twice")
         out.append((name, file))
     return out
 
