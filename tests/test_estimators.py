@@ -388,3 +388,19 @@ def test_iterative_fixed_magnitude_unbiased_converges_and_naive_is_biased_low(
         assert float(naive.magnitude_sq) < float(good.magnitude_sq) - 0.05
         if snr_db <= -10:
             assert float(naive.magnitude_sq) < 0.05  # collapsed (measured: to the floor)
+
+
+def test_diagonal_loading_shifts_every_eigenvalue_by_a_share_of_the_mean(random_covariance):
+    # Adding c I to a Hermitian matrix shifts each eigenvalue by c and keeps the eigenvectors
+    # (a standard fact of linear algebra, e.g. Horn & Johnson, Matrix Analysis, chapter 1;
+    # recalled from memory); trace / dim is the mean eigenvalue. The engine loads its lifted
+    # covariance with this same helper.
+    rng = np.random.default_rng(7)
+    stack = np.stack([random_covariance(3, rng, loading=0.01) for _ in range(4)])
+    loaded = est.diagonally_loaded(stack, 0.1)
+    before, after = np.linalg.eigvalsh(stack), np.linalg.eigvalsh(loaded)
+    mean = np.real(np.trace(stack, axis1=-2, axis2=-1)) / 3
+    np.testing.assert_allclose(after - before, 0.1 * mean[:, None] * np.ones(3), rtol=1e-10)
+    assert est.diagonally_loaded(stack, 0.0) is stack
+    with pytest.raises(ValueError, match="diagonal loading"):
+        est.diagonally_loaded(stack, -0.1)
