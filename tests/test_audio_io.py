@@ -41,37 +41,15 @@ def tone(frames: int, channels: int, rate_hz: int = RATE_HZ) -> np.ndarray:
     return np.stack([0.4 * np.sin(2 * np.pi * 300.0 * (c + 1) * t) for c in range(channels)], 1)
 
 
-def hand_bext() -> bytes:
-    # EBU Tech 3285 v2 BROADCAST_EXT, field by field.
-    return b"".join(
-        [
-            b"boom and lav".ljust(256, b"\0"),  # Description
-            b"field recorder".ljust(32, b"\0"),  # Originator
-            b"ORIG-42".ljust(32, b"\0"),  # OriginatorReference
-            b"2023-11-02",  # OriginationDate
-            b"10:00:00",  # OriginationTime
-            struct.pack("<II", TIME_REFERENCE_SAMPLES & 0xFFFFFFFF, TIME_REFERENCE_SAMPLES >> 32),
-            struct.pack("<H", 1),  # Version
-            b"\0" * 64,  # UMID
-            b"\0" * 10,  # loudness words (unused in version 1)
-            b"\0" * 180,  # Reserved
-            b"A=PCM,F=48000,W=24,M=stereo\r\n",  # CodingHistory
-        ]
-    )
+# The bext chunk of the test take (EBU Tech 3285 version 1: loudness words unused).
+BEXT = dict(
+    description=b"boom and lav", originator=b"field recorder", reference=b"ORIG-42",
+    date=b"2023-11-02", time=b"10:00:00", time_reference_samples=TIME_REFERENCE_SAMPLES,
+    version=1, coding_history=b"A=PCM,F=48000,W=24,M=stereo\r\n",
+)
 
 
 IXML = b"<?xml version='1.0'?><BWFXML><SCENE>12</SCENE><TAKE>3</TAKE></BWFXML>"  # odd length
-
-
-def splice_before_data(wav: bytes, chunks: list[tuple[bytes, bytes]]) -> bytes:
-    """Insert chunks before 'data' by hand (RIFF 1.0), independently of liftmag."""
-    data_at = wav.index(b"data", 12)
-    extra = b"".join(
-        cid + struct.pack("<I", len(p)) + p + (b"\0" if len(p) % 2 else b"") for cid, p in chunks
-    )
-    out = bytearray(wav[:data_at] + extra + wav[data_at:])
-    struct.pack_into("<I", out, 4, len(out) - 8)
-    return bytes(out)
 
 
 def raw_chunk(raw: bytes, chunk_id: bytes) -> bytes:
@@ -86,11 +64,11 @@ def raw_chunk(raw: bytes, chunk_id: bytes) -> bytes:
 
 
 @pytest.fixture
-def bwf(tmp_path: Path) -> Path:
+def bwf(tmp_path: Path, pack_bext, splice_before_data) -> Path:
     plain = tmp_path / "plain.wav"
     sf.write(plain, tone(4801, 2), RATE_HZ, subtype="PCM_24")
     path = tmp_path / "take.wav"
-    chunks = [(b"bext", hand_bext()), (b"iXML", IXML)]
+    chunks = [(b"bext", pack_bext(**BEXT)), (b"iXML", IXML)]
     path.write_bytes(splice_before_data(plain.read_bytes(), chunks))
     return path
 
@@ -218,14 +196,14 @@ def test_non_finite_in_a_group_names_the_stem(tmp_path: Path) -> None:
 # ---------------------------------------------------------------- writing
 
 
-def test_bwf_round_trip_carries_chunks_byte_for_byte(tmp_path: Path, bwf: Path) -> None:
+def test_bwf_round_trip_carries_chunks_byte_for_byte(tmp_path: Path, bwf: Path, pack_bext) -> None:
     info = probe(bwf)
     out = tmp_path / "clean.wav"
     with AtomicAudioWriter(out, like=info) as writer:
         for block in read_blocks(info, 1000):
             writer.write(block)
     raw = out.read_bytes()
-    assert raw_chunk(raw, b"bext") == hand_bext()
+    assert raw_chunk(raw, b"bext") == pack_bext(**BEXT)
     assert raw_chunk(raw, b"iXML") == IXML
     # EBU Tech 3285: TimeReferenceLow/High start 338 bytes into bext.
     low, high = struct.unpack_from("<II", raw_chunk(raw, b"bext"), 338)

@@ -18,6 +18,7 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -25,7 +26,6 @@ import pytest
 import soundfile as sf
 
 from liftmag import audio_io, batch
-from liftmag.cli import main
 from liftmag.scenes import demo_scene
 from liftmag.settings import Settings
 
@@ -53,12 +53,6 @@ def write_stems(paths: list[Path], scene, offset_s: float = 0.0) -> None:
         sf.write(path, block, FS, subtype="PCM_16")
 
 
-def run_cli(capsys, *args: str) -> tuple[int, str, str]:
-    rc = main(list(args))
-    captured = capsys.readouterr()
-    return rc, captured.out, captured.err
-
-
 def events(out_dir: Path) -> list[dict]:
     lines = (out_dir / batch.LOG_NAME).read_text().splitlines()
     return [json.loads(line) for line in lines]
@@ -66,10 +60,6 @@ def events(out_dir: Path) -> list[dict]:
 
 def last_end(out_dir: Path) -> dict:
     return [e for e in events(out_dir) if e["event"] == "end"][-1]
-
-
-def partials(folder: Path) -> list[Path]:
-    return [p for p in folder.rglob("*") if ".partial-" in p.name]
 
 
 def digest(path: Path) -> str:
@@ -150,7 +140,9 @@ def test_sha256_file_matches_hashlib_on_the_whole_file(tmp_path):
 # --------------------------------------------------------------- a folder with trouble
 
 
-def test_bad_takes_are_reported_good_ones_processed_nothing_partial(tmp_path, capsys, scene):
+def test_bad_takes_are_reported_good_ones_processed_nothing_partial(
+    tmp_path, scene, run_cli, partials
+):
     src = tmp_path / "day"
     write_take(src / "good1.wav", scene, 0.0)
     write_take(src / "sub" / "good2.wav", scene, 4.0)
@@ -164,7 +156,7 @@ def test_bad_takes_are_reported_good_ones_processed_nothing_partial(tmp_path, ca
     out = tmp_path / "clean"
 
     rc, stdout, stderr = run_cli(
-        capsys, "batch", str(src), str(tmp_path / "missing.wav"), "--out", str(out),
+        "batch", str(src), str(tmp_path / "missing.wav"), "--out", str(out),
         "--group-by-suffix", r"_(\d+)$", "--jobs", "2",
     )
 
@@ -193,7 +185,7 @@ def test_bad_takes_are_reported_good_ones_processed_nothing_partial(tmp_path, ca
 # ---------------------------------------------------------------------------- resume
 
 
-def test_rerun_skips_up_to_date_takes_and_redoes_what_changed(tmp_path, capsys, scene):
+def test_rerun_skips_up_to_date_takes_and_redoes_what_changed(tmp_path, scene, run_cli):
     src = tmp_path / "in"
     for i in range(3):
         write_take(src / f"t{i}.wav", scene, float(i))
@@ -201,7 +193,7 @@ def test_rerun_skips_up_to_date_takes_and_redoes_what_changed(tmp_path, capsys, 
     args = ["batch", str(src), "--out", str(out), "--jobs", "1", "--json"]
 
     def counts(*extra: str) -> tuple[int, int, int]:
-        rc, stdout, _ = run_cli(capsys, *args, *extra)
+        rc, stdout, _ = run_cli(*args, *extra)
         summary = json.loads(stdout)
         assert rc == (1 if summary["failed"] else 0)
         return summary["done"], summary["skipped"], summary["failed"]
@@ -224,11 +216,11 @@ def test_rerun_skips_up_to_date_takes_and_redoes_what_changed(tmp_path, capsys, 
     assert "not written by liftmag batch" in last_end(out)["failures"][0]["reason"]
 
 
-def test_a_second_batch_into_the_same_folder_is_refused(tmp_path, capsys, scene):
+def test_a_second_batch_into_the_same_folder_is_refused(tmp_path, scene, run_cli):
     write_take(tmp_path / "in" / "a.wav", scene)
     out = tmp_path / "out"
     with batch.batch_lock(out):
-        rc, _, stderr = run_cli(capsys, "batch", str(tmp_path / "in"), "--out", str(out))
+        rc, _, stderr = run_cli("batch", str(tmp_path / "in"), "--out", str(out))
     assert rc == 2 and "another liftmag batch" in stderr
 
 
@@ -236,7 +228,7 @@ def test_a_second_batch_into_the_same_folder_is_refused(tmp_path, capsys, scene)
 
 
 def test_outputs_are_bit_identical_to_process_for_1_2_workers_and_dask(
-    tmp_path, capsys, monkeypatch, scene
+    tmp_path, monkeypatch, scene, run_cli, partials
 ):
     from distributed import LocalCluster
 
@@ -247,7 +239,7 @@ def test_outputs_are_bit_identical_to_process_for_1_2_workers_and_dask(
     for take in takes:
         target = tmp_path / "ref" / take.parent.name / "take.wav"
         target.parent.mkdir(parents=True)
-        rc, _, _ = run_cli(capsys, "process", str(take), "-o", str(target), *settings)
+        rc, _, _ = run_cli("process", str(take), "-o", str(target), *settings)
         assert rc == 0
         reference[take.parent.name] = target.read_bytes()
 
@@ -256,7 +248,7 @@ def test_outputs_are_bit_identical_to_process_for_1_2_workers_and_dask(
 
     for jobs in ("1", "2"):
         out = tmp_path / f"jobs{jobs}"
-        rc, _, _ = run_cli(capsys, "batch", str(src), "--out", str(out), "--jobs", jobs, *settings)
+        rc, _, _ = run_cli("batch", str(src), "--out", str(out), "--jobs", jobs, *settings)
         assert rc == 0
         assert batch_outputs(out) == reference
     # Dask's own LocalCluster on loopback is the reference executor for --cluster.
@@ -266,7 +258,7 @@ def test_outputs_are_bit_identical_to_process_for_1_2_workers_and_dask(
     ) as cluster:
         out = tmp_path / "dask"
         rc, _, stderr = run_cli(
-            capsys, "batch", str(src), "--out", str(out), "--cluster", cluster.scheduler_address,
+            "batch", str(src), "--out", str(out), "--cluster", cluster.scheduler_address,
             *settings,
         )
         assert rc == 0 and "MALLOC_TRIM_THRESHOLD_" not in stderr
@@ -275,7 +267,7 @@ def test_outputs_are_bit_identical_to_process_for_1_2_workers_and_dask(
         # started by Dask's nanny see the variable it sets.
         monkeypatch.setenv("MALLOC_TRIM_THRESHOLD_", "65536")
         rc, stdout, stderr = run_cli(
-            capsys, "batch", str(src), "--out", str(out), "--cluster", cluster.scheduler_address,
+            "batch", str(src), "--out", str(out), "--cluster", cluster.scheduler_address,
             "--json", *settings,
         )
     assert rc == 0 and json.loads(stdout)["skipped"] == 3
@@ -283,7 +275,7 @@ def test_outputs_are_bit_identical_to_process_for_1_2_workers_and_dask(
     assert partials(tmp_path) == []
 
 
-def test_grouped_mono_stems_equal_the_multichannel_file(tmp_path, capsys, scene):
+def test_grouped_mono_stems_equal_the_multichannel_file(tmp_path, scene, run_cli):
     write_take(tmp_path / "multi" / "take.wav", scene, 1.0)
     # Channel 0 is "_9" and channel 1 is "_10": sorting by name would swap them.
     write_stems([tmp_path / "stems" / "take_9.wav", tmp_path / "stems" / "take_10.wav"], scene, 1.0)
@@ -292,7 +284,7 @@ def test_grouped_mono_stems_equal_the_multichannel_file(tmp_path, capsys, scene)
     sf.write(swapped, scene.mixture[::-1, FS : FS + round(TAKE_S * FS)].T, FS, subtype="PCM_16")
     for name in ("multi", "stems", "swapped"):
         rc, _, _ = run_cli(
-            capsys, "batch", str(tmp_path / name), "--out", str(tmp_path / f"out-{name}"),
+            "batch", str(tmp_path / name), "--out", str(tmp_path / f"out-{name}"),
             "--group-by-suffix", r"_(\d+)$", "--jobs", "1",
         )
         assert rc == 0
@@ -304,7 +296,7 @@ def test_grouped_mono_stems_equal_the_multichannel_file(tmp_path, capsys, scene)
 # ------------------------------------------------------------------------- manifest
 
 
-def test_manifest_rows_with_stems_room_tone_and_overrides(tmp_path, capsys, scene):
+def test_manifest_rows_with_stems_room_tone_and_overrides(tmp_path, scene, run_cli):
     media = tmp_path / "media"
     write_take(media / "a.wav", scene, 0.0)
     write_stems([media / "b1.wav", media / "b2.wav"], scene, 3.0)
@@ -318,7 +310,7 @@ def test_manifest_rows_with_stems_room_tone_and_overrides(tmp_path, capsys, scen
         "a.wav,bad/a2.wav,,mvdr,12,160\n"
     )
     out = tmp_path / "out"
-    rc, _, _ = run_cli(capsys, "batch", "--manifest", str(manifest), "--out", str(out),
+    rc, _, _ = run_cli("batch", "--manifest", str(manifest), "--out", str(out),
                             "--jobs", "2")
     assert rc == 1
     end = last_end(out)
@@ -329,16 +321,16 @@ def test_manifest_rows_with_stems_room_tone_and_overrides(tmp_path, capsys, scen
 
     # The same takes through `liftmag learn` and `liftmag process`, as a user would.
     model = tmp_path / "tone.npz"
-    assert run_cli(capsys, "learn", str(media / "tone.wav"), "-o", str(model))[0] == 0
+    assert run_cli("learn", str(media / "tone.wav"), "-o", str(model))[0] == 0
     ref_b = tmp_path / "ref_b.wav"
     rc, _, _ = run_cli(
-        capsys, "process", str(media / "b1.wav"), str(media / "b2.wav"), "-o", str(ref_b),
+        "process", str(media / "b1.wav"), str(media / "b2.wav"), "-o", str(ref_b),
         "--noise-model", str(model), "--estimator", "lifted-mv", "--reduction-limit-db", "12",
     )
     assert rc == 0
     assert (out / "toned" / "b.wav").read_bytes() == ref_b.read_bytes()
     ref_a = tmp_path / "ref_a.wav"
-    assert run_cli(capsys, "process", str(media / "a.wav"), "-o", str(ref_a))[0] == 0
+    assert run_cli("process", str(media / "a.wav"), "-o", str(ref_a))[0] == 0
     assert (out / "plain" / "a.wav").read_bytes() == ref_a.read_bytes()
 
 
@@ -351,20 +343,20 @@ def test_manifest_rows_with_stems_room_tone_and_overrides(tmp_path, capsys, scen
         ("input,output\n", "no takes listed"),
     ],
 )
-def test_bad_manifests_are_refused_in_one_line(tmp_path, capsys, text, message):
+def test_bad_manifests_are_refused_in_one_line(tmp_path, text, message, run_cli):
     manifest = tmp_path / "m.csv"
     if text is not None:
         manifest.write_text(text)
-    rc, _, stderr = run_cli(capsys, "batch", "--manifest", str(manifest), "--out",
+    rc, _, stderr = run_cli("batch", "--manifest", str(manifest), "--out",
                             str(tmp_path / "o"))
     assert rc == 2
     assert message in stderr and stderr.count("\n") == 1
 
 
-def test_empty_selection_is_refused(tmp_path, capsys):
+def test_empty_selection_is_refused(tmp_path, run_cli):
     (tmp_path / "empty").mkdir()
     (tmp_path / "empty" / "readme.txt").write_text("no audio here")
-    rc, _, stderr = run_cli(capsys, "batch", str(tmp_path / "empty"), "--out",
+    rc, _, stderr = run_cli("batch", str(tmp_path / "empty"), "--out",
                             str(tmp_path / "o"))
     assert rc == 2 and "nothing to process" in stderr
 
@@ -419,7 +411,9 @@ def _stopped(pid: int) -> bool:
         return fh.read().rsplit(")", 1)[1].split()[0] == "T"
 
 
-def _signal_part_way(proc: subprocess.Popen, out: Path, n: int, signum: int) -> None:
+def _signal_part_way(
+    proc: subprocess.Popen, out: Path, n: int, signum: int, partials: Callable
+) -> None:
     """Deliver ``signum`` while at least one take is still to be handed out.
 
     The batch is stopped first (SIGSTOP cannot be caught, POSIX); while stopped it cannot
@@ -438,14 +432,14 @@ def _signal_part_way(proc: subprocess.Popen, out: Path, n: int, signum: int) -> 
 
 @pytest.mark.skipif(not Path("/proc/self/stat").is_file(), reason="needs Linux /proc")
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM, signal.SIGHUP])
-def test_sigint_part_way_leaves_no_partials_and_a_rerun_finishes(tmp_path, scene, signum):
+def test_sigint_part_way_leaves_no_partials_and_a_rerun_finishes(tmp_path, scene, signum, partials):
     # SIGINT is what Ctrl-C delivers, SIGTERM what `kill PID` sends, SIGHUP a closed
     # terminal (POSIX); the batch stops the same way for each.
     src, out, n = tmp_path / "in", tmp_path / "out", 8
     for i in range(n):
         write_take(src / f"t{i:02d}.wav", scene, 0.5 * i, seconds=2.0)
     proc = _start_batch(src, out, jobs=1)
-    _signal_part_way(proc, out, n, signum)
+    _signal_part_way(proc, out, n, signum, partials)
     stdout, _ = proc.communicate(timeout=60)
 
     assert proc.returncode == 130
@@ -475,7 +469,7 @@ def _writers_of_partials(out: Path) -> dict[int, Path]:
 
 
 @pytest.mark.skipif(not Path("/proc/self/fd").is_dir(), reason="needs Linux /proc")
-def test_sigkilled_worker_fails_its_take_only_and_leaves_no_partial(tmp_path, scene):
+def test_sigkilled_worker_fails_its_take_only_and_leaves_no_partial(tmp_path, scene, partials):
     src, out, n = tmp_path / "in", tmp_path / "out", 12
     for i in range(n):
         write_take(src / f"t{i:02d}.wav", scene, 0.5 * i)
@@ -511,34 +505,34 @@ def test_sigkilled_worker_fails_its_take_only_and_leaves_no_partial(tmp_path, sc
 # ------------------------------------------------------------- nothing lost, delivery folders
 
 
-def test_delivery_folder_holds_the_outputs_only_and_resume_still_works(tmp_path, capsys, scene):
+def test_delivery_folder_holds_the_outputs_only_and_resume_still_works(tmp_path, scene, run_cli):
     src, out = tmp_path / "in", tmp_path / "out"
     write_take(src / "a.wav", scene, 0.0)
     write_take(src / "sub" / "b.wav", scene, 1.0)
     args = ["batch", str(src), "--out", str(out), "--jobs", "1", "--json"]
-    assert run_cli(capsys, *args)[0] == 0
+    assert run_cli(*args)[0] == 0
     delivered = sorted(
         str(p.relative_to(out)) for p in out.rglob("*")
         if p.is_file() and batch.STATE_DIR_NAME not in p.parts and p.name != batch.LOG_NAME
     )
     assert delivered == ["a.wav", "sub/b.wav"]  # no hidden record beside any output
-    rc, stdout, _ = run_cli(capsys, *args)
+    rc, stdout, _ = run_cli(*args)
     assert rc == 0 and json.loads(stdout)["skipped"] == 2
     # A folder made by an earlier version (records beside the outputs) still resumes,
     # and its hidden records are moved into the batch's own folder.
     for name in ("a.wav", "sub/b.wav"):
         new = batch.record_path(out / name, out)
         os.replace(new, batch.record_path(out / name))
-    rc, stdout, _ = run_cli(capsys, *args)
+    rc, stdout, _ = run_cli(*args)
     assert rc == 0 and json.loads(stdout)["skipped"] == 2
     write_take(src / "a.wav", scene, 2.0)
-    rc, stdout, _ = run_cli(capsys, *args)
+    rc, stdout, _ = run_cli(*args)
     assert rc == 0 and json.loads(stdout)["done"] == 1
     assert not batch.record_path(out / "a.wav").exists()
     assert batch.record_path(out / "a.wav", out).is_file()
 
 
-def test_manifest_shifted_cells_and_escaping_outputs_are_refused(tmp_path, capsys, scene):
+def test_manifest_shifted_cells_and_escaping_outputs_are_refused(tmp_path, scene, run_cli):
     media = tmp_path / "media"
     write_take(media / "a.wav", scene, 0.0)
     (media / "takes.csv").write_text(
@@ -549,7 +543,7 @@ def test_manifest_shifted_cells_and_escaping_outputs_are_refused(tmp_path, capsy
         f"a.wav,{tmp_path / 'absolute.wav'},,\n"
     )
     out = tmp_path / "out"
-    rc, _, _ = run_cli(capsys, "batch", "--manifest", str(media / "takes.csv"), "--out",
+    rc, _, _ = run_cli("batch", "--manifest", str(media / "takes.csv"), "--out",
                        str(out), "--jobs", "1")
     assert rc == 1
     end = last_end(out)
@@ -561,18 +555,18 @@ def test_manifest_shifted_cells_and_escaping_outputs_are_refused(tmp_path, capsy
     assert not (out / "shifted.wav").exists()
 
 
-def test_redo_never_writes_over_a_room_tone_or_noise_model(tmp_path, capsys, scene):
+def test_redo_never_writes_over_a_room_tone_or_noise_model(tmp_path, scene, run_cli):
     media = tmp_path / "media"
     write_take(media / "a.wav", scene, 0.0)
     sf.write(media / "tone.wav", scene.room_tone.T, FS, subtype="PCM_16")
-    assert run_cli(capsys, "learn", str(media / "tone.wav"), "-o", str(media / "m.npz"))[0] == 0
+    assert run_cli("learn", str(media / "tone.wav"), "-o", str(media / "m.npz"))[0] == 0
     (media / "takes.csv").write_text(
         "input,output,room_tone,noise_model\n"
         "a.wav,tone.wav,tone.wav,\n"
         "a.wav,m.npz,,m.npz\n"
     )
     before = {p.name: p.read_bytes() for p in media.iterdir()}
-    rc, _, _ = run_cli(capsys, "batch", "--manifest", str(media / "takes.csv"), "--out",
+    rc, _, _ = run_cli("batch", "--manifest", str(media / "takes.csv"), "--out",
                        str(media), "--redo", "--jobs", "1")
     assert rc == 1 and last_end(media)["failed"] == 2
     assert all((media / name).read_bytes() == data for name, data in before.items())
@@ -580,13 +574,13 @@ def test_redo_never_writes_over_a_room_tone_or_noise_model(tmp_path, capsys, sce
     tone_as_output = tmp_path / "o2" / "a.wav"
     tone_as_output.parent.mkdir()
     tone_as_output.write_bytes((media / "tone.wav").read_bytes())
-    rc, _, _ = run_cli(capsys, "batch", str(media / "a.wav"), "--out", str(tmp_path / "o2"),
+    rc, _, _ = run_cli("batch", str(media / "a.wav"), "--out", str(tmp_path / "o2"),
                        "--room-tone", str(tone_as_output), "--redo", "--jobs", "1")
     assert rc == 1 and "read by this batch" in last_end(tmp_path / "o2")["failures"][0]["reason"]
     assert tone_as_output.read_bytes() == before["tone.wav"]
 
 
-def test_start_up_sweep_leaves_another_writers_temporary_file(tmp_path, capsys, scene):
+def test_start_up_sweep_leaves_another_writers_temporary_file(tmp_path, scene, run_cli, partials):
     src, out = tmp_path / "in", tmp_path / "out"
     write_take(src / "t0.wav", scene)
     out.mkdir()
@@ -597,7 +591,7 @@ def test_start_up_sweep_leaves_another_writers_temporary_file(tmp_path, capsys, 
         writer.write(np.zeros((2, 100)))
         temp = partials(out)
         assert len(temp) == 1
-        assert run_cli(capsys, "batch", str(src), "--out", str(out), "--jobs", "1",
+        assert run_cli("batch", str(src), "--out", str(out), "--jobs", "1",
                        "--redo")[0] == 0
         assert temp[0].exists()  # the batch's sweeps left it alone
         writer.write(np.zeros((2, 100)))

@@ -32,36 +32,6 @@ def _listing(folder: Path) -> set[str]:
     return {p.name for p in folder.iterdir()}
 
 
-def _bext_payload(time_reference: int) -> bytes:
-    # EBU Tech 3285 (v2) bext layout: Description 256, Originator 32, OriginatorReference 32,
-    # OriginationDate 10, OriginationTime 8, TimeReference low/high uint32, Version uint16,
-    # UMID 64, five loudness int16, 180 reserved bytes, then CodingHistory.
-    return b"".join([
-        b"Scene 12 take 3, boom and plant".ljust(256, b"\0"),
-        b"liftmag tests".ljust(32, b"\0"),
-        b"REF0001".ljust(32, b"\0"),
-        b"2026-12-02",
-        b"10:11:12",
-        struct.pack("<II", time_reference & 0xFFFFFFFF, time_reference >> 32),
-        struct.pack("<H", 2),
-        b"\0" * 64,
-        struct.pack("<5h", 0, 0, 0, 0, 0),
-        b"\0" * 180,
-        b"A=PCM,F=16000,W=24,M=stereo\r\n",
-    ])
-
-
-def _with_chunks(path: Path, chunks: list[tuple[bytes, bytes]]) -> None:
-    raw = path.read_bytes()
-    data_at = raw.index(b"data", 12)
-    extra = b"".join(
-        cid + struct.pack("<I", len(p)) + p + (b"\0" if len(p) % 2 else b"") for cid, p in chunks
-    )
-    out = bytearray(raw[:data_at] + extra + raw[data_at:])
-    struct.pack_into("<I", out, 4, len(out) - 8)  # RIFF size = file size - 8 (RIFF spec, 1991)
-    path.write_bytes(bytes(out))
-
-
 def _chunk(path: Path, cid: bytes) -> bytes:
     raw = path.read_bytes()
     offset = 12
@@ -73,10 +43,16 @@ def _chunk(path: Path, cid: bytes) -> bytes:
     raise AssertionError(f"no {cid!r} chunk")
 
 
-def test_process_keeps_length_rate_subtype_and_broadcast_chunks(tmp_path, take):
+def test_process_keeps_length_rate_subtype_and_broadcast_chunks(
+    tmp_path, take, pack_bext, splice_before_data
+):
     ixml = b"<?xml version='1.0'?><BWFXML><SCENE>12</SCENE><TAKE>3</TAKE></BWFXML>"
-    bext = _bext_payload(time_reference=3_600 * FS)
-    _with_chunks(take, [(b"bext", bext), (b"iXML", ixml)])
+    bext = pack_bext(
+        description=b"Scene 12 take 3, boom and plant", originator=b"liftmag tests",
+        reference=b"REF0001", date=b"2026-12-02", time=b"10:11:12",
+        time_reference_samples=3_600 * FS, coding_history=b"A=PCM,F=16000,W=24,M=stereo\r\n",
+    )
+    take.write_bytes(splice_before_data(take.read_bytes(), [(b"bext", bext), (b"iXML", ixml)]))
     out = tmp_path / "clean.wav"
     assert main(["process", str(take), "-o", str(out)]) == 0
     info_in, info_out = sf.info(take), sf.info(out)

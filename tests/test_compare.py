@@ -147,19 +147,13 @@ def scene(speech, tmp_path_factory):
     return d, fs
 
 
-def _run(argv, capsys):
-    rc = main(argv)
-    captured = capsys.readouterr()
-    return rc, captured.out, captured.err
-
-
 @pytest.fixture(scope="module")
 def full_run(scene, tmp_path_factory):
     d, _ = scene
     out = tmp_path_factory.mktemp("run") / "cmp"
     argv = [
         "compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"),
-        "--version", f"other={d / 'other.wav'}", "--clean", str(d / "clean.flac"),
+        "--other", f"other={d / 'other.wav'}", "--clean", str(d / "clean.flac"),
         "--out", str(out), "--json",
     ]  # fmt: skip
     import contextlib
@@ -261,9 +255,9 @@ def _identify(blind_path: Path, summary) -> str:
     return best
 
 
-def test_reveal_round_trips(full_run, capsys):
+def test_reveal_round_trips(full_run, run_cli):
     out, summary, _ = full_run
-    rc, text, _ = _run(["compare", "--reveal", str(out / "blind-key.json")], capsys)
+    rc, text, _ = run_cli(*["compare", "--reveal", str(out / "blind-key.json")])
     assert rc == 0
     revealed = dict(re.findall(r"^(take-\d+\.wav)\s+is\s+(\S+)", text, flags=re.M))
     assert len(revealed) == 3
@@ -358,12 +352,11 @@ def _assert_nothing_written(out: Path):
     assert not out.exists()
 
 
-def test_missing_file_is_a_clear_error_and_writes_nothing(scene, tmp_path, capsys):
+def test_missing_file_is_a_clear_error_and_writes_nothing(scene, tmp_path, run_cli):
     d, _ = scene
     out = tmp_path / "cmp"
-    rc, _, err = _run(
-        ["compare", str(d / "take.wav"), "--liftmag", str(d / "nope.wav"), "--out", str(out)],
-        capsys,
+    rc, _, err = run_cli(
+        *["compare", str(d / "take.wav"), "--liftmag", str(d / "nope.wav"), "--out", str(out)],
     )
     assert rc == 2
     assert err.strip().count("\n") == 0
@@ -371,13 +364,13 @@ def test_missing_file_is_a_clear_error_and_writes_nothing(scene, tmp_path, capsy
     _assert_nothing_written(out)
 
 
-def test_unreadable_file_is_a_clear_error(scene, tmp_path, capsys):
+def test_unreadable_file_is_a_clear_error(scene, tmp_path, run_cli):
     d, _ = scene
     bad = tmp_path / "bad.wav"
     bad.write_text("not audio")
     out = tmp_path / "cmp"
-    rc, _, err = _run(
-        ["compare", str(d / "take.wav"), "--liftmag", str(bad), "--out", str(out)], capsys
+    rc, _, err = run_cli(
+        *["compare", str(d / "take.wav"), "--liftmag", str(bad), "--out", str(out)]
     )
     assert rc == 2 and "liftmag: " in err and "cannot read" in err
     assert err.strip().count("\n") == 0
@@ -385,7 +378,7 @@ def test_unreadable_file_is_a_clear_error(scene, tmp_path, capsys):
 
 
 @pytest.mark.parametrize("which", ["version", "original", "clean"])
-def test_silence_is_a_clear_error(scene, tmp_path, capsys, which):
+def test_silence_is_a_clear_error(scene, tmp_path, run_cli, which):
     d, fs = scene
     silent = tmp_path / "silent.wav"
     sf.write(silent, np.zeros(fs * 3), fs)
@@ -394,39 +387,39 @@ def test_silence_is_a_clear_error(scene, tmp_path, capsys, which):
     out = tmp_path / "cmp"
     argv = ["compare", str(files["original"]), "--liftmag", str(files["version"]),
             "--clean", str(files["clean"]), "--out", str(out)]  # fmt: skip
-    rc, _, err = _run(argv, capsys)
+    rc, _, err = run_cli(*argv)
     assert rc == 2 and "digital silence" in err
     _assert_nothing_written(out)
 
 
-def test_bad_arguments_are_clear_errors(scene, tmp_path, capsys):
+def test_bad_arguments_are_clear_errors(scene, tmp_path, run_cli):
     d, _ = scene
     out = tmp_path / "cmp"
     base = ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out)]
     cases = [
-        (["--version", "nofile"], "NAME=FILE"),
-        (["--version", f"original={d / 'lift.wav'}"], "reserved"),
+        (["--other", "nofile"], "NAME=FILE"),
+        (["--other", f"original={d / 'lift.wav'}"], "reserved"),
         (["--channel", "5"], "out of range"),
         (["--noise-region", "3:2"], "START < END"),
         (["--noise-region", "40:41"], "beyond the original's end"),
     ]
     for extra, fragment in cases:
-        rc, _, err = _run(base + extra, capsys)
+        rc, _, err = run_cli(*base + extra)
         assert rc == 2 and fragment in err, (extra, err)
     _assert_nothing_written(out)
 
 
-def test_existing_outputs_need_force_and_inputs_are_never_overwritten(scene, tmp_path, capsys):
+def test_existing_outputs_need_force_and_inputs_are_never_overwritten(scene, tmp_path, run_cli):
     d, _ = scene
     out = tmp_path / "cmp"
     (out / "blind").mkdir(parents=True)
     (out / "blind" / "take-7.wav").write_bytes(b"old")
     argv = ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out),
             "--noise-region", "4.1:4.4", "--noise-region", "7.7:8.0"]  # fmt: skip
-    rc, _, err = _run(argv, capsys)
+    rc, _, err = run_cli(*argv)
     assert rc == 2 and "--force" in err
     assert sorted(p.name for p in out.rglob("*")) == ["blind", "take-7.wav"]
-    rc, text, err = _run([*argv, "--force"], capsys)
+    rc, text, err = run_cli(*[*argv, "--force"])
     assert rc == 0, err
     assert "report:" in text and "caution" in text
     # The stale blind file from an earlier run is gone; the new set is complete.
@@ -438,39 +431,36 @@ def test_existing_outputs_need_force_and_inputs_are_never_overwritten(scene, tmp
     clash = tmp_path / "clash"
     clash.mkdir()
     shutil.copy(d / "take.wav", clash / "report.html")
-    rc, _, err = _run(
-        ["compare", str(clash / "report.html"), "--liftmag", str(d / "lift.wav"),
+    rc, _, err = run_cli(
+        *["compare", str(clash / "report.html"), "--liftmag", str(d / "lift.wav"),
          "--out", str(clash), "--force"],
-        capsys,
     )  # fmt: skip
     assert rc == 2 and "overwrite an input" in err
 
 
-def test_force_never_deletes_an_input_that_is_a_stale_blind_file(scene, tmp_path, capsys):
+def test_force_never_deletes_an_input_that_is_a_stale_blind_file(scene, tmp_path, run_cli):
     d, _ = scene
     out = tmp_path / "cmp"
     (out / "blind").mkdir(parents=True)
     stale_input = out / "blind" / "take-9.wav"  # named like a blind file of an earlier run
     shutil.copy(d / "lift.wav", stale_input)
     before = stale_input.read_bytes()
-    rc, _, err = _run(
-        ["compare", str(d / "take.wav"), "--liftmag", str(stale_input), "--out", str(out),
+    rc, _, err = run_cli(
+        *["compare", str(d / "take.wav"), "--liftmag", str(stale_input), "--out", str(out),
          "--force"],
-        capsys,
     )  # fmt: skip
     assert rc == 2 and "input" in err and len(err.strip().splitlines()) == 1
     assert stale_input.read_bytes() == before
 
 
-def test_force_never_replaces_a_fifo_among_the_outputs(scene, tmp_path, capsys):
+def test_force_never_replaces_a_fifo_among_the_outputs(scene, tmp_path, run_cli):
     d, _ = scene
     out = tmp_path / "cmp"
     out.mkdir()
     os.mkfifo(out / "report.md")
-    rc, _, err = _run(
-        ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out),
+    rc, _, err = run_cli(
+        *["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out),
          "--force"],
-        capsys,
     )  # fmt: skip
     # POSIX S_ISFIFO: the FIFO is still there, untouched.
     assert rc == 2 and "not a regular file" in err
@@ -478,25 +468,25 @@ def test_force_never_replaces_a_fifo_among_the_outputs(scene, tmp_path, capsys):
 
 
 @pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGHUP])
-def test_sigterm_or_sighup_while_writing_leaves_nothing(scene, tmp_path, capsys, monkeypatch,
+def test_sigterm_or_sighup_while_writing_leaves_nothing(scene, tmp_path, run_cli, monkeypatch,
                                                        signum):
-    from liftmag.commands import compare
+    from liftmag.audio_io import StagedOutputs
 
     d, _ = scene
     out = tmp_path / "cmp"
-    real_text = compare._Staging.text
+    real_text = StagedOutputs.write_text
     sent = []
 
     def text_then_signal(self, final, text):
-        real_text(self, final, text)
+        staged = real_text(self, final, text)
         if not sent:  # the signal arrives once some outputs are staged, none committed
             sent.append(signum)
             os.kill(os.getpid(), signum)  # POSIX kill(): delivered before kill() returns
+        return staged
 
-    monkeypatch.setattr(compare._Staging, "text", text_then_signal)
-    rc, _, err = _run(
-        ["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out)],
-        capsys,
+    monkeypatch.setattr(StagedOutputs, "write_text", text_then_signal)
+    rc, _, err = run_cli(
+        *["compare", str(d / "take.wav"), "--liftmag", str(d / "lift.wav"), "--out", str(out)],
     )  # fmt: skip
     assert sent and rc == 128 + signum, err  # shells' 128 + N (common practice)
     assert not out.exists() or list(out.rglob("*")) == []

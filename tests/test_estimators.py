@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from randmat import crandn, random_covariance
 from scipy import optimize
 
 from liftmag import estimators as est
@@ -39,7 +38,9 @@ def two_mic(frequency_hz: float, spacing_m: float = 0.08):
 # --------------------------------------------------------------------------- linear
 
 
-def test_delay_sum_and_mvdr_are_distortionless_and_mvdr_minimises_noise() -> None:
+def test_delay_sum_and_mvdr_are_distortionless_and_mvdr_minimises_noise(
+    crandn, random_covariance
+) -> None:
     # Van Trees ch. 6: h^H g = 1; MVDR output noise h^H Phi h = 1/(g^H Phi^-1 g) is the
     # minimum over all distortionless h.
     m = 4
@@ -162,7 +163,9 @@ def test_point_null_width_at_quarter_wave_endfire_phase() -> None:
 
 
 @pytest.mark.parametrize("m", [2, 3, 4])
-def test_lifted_mv_equals_mvdr_power_minus_residual_in_gaussian_noise(m: int) -> None:
+def test_lifted_mv_equals_mvdr_power_minus_residual_in_gaussian_noise(
+    m: int, crandn, random_covariance
+) -> None:
     # docs/estimators.md §5, check 5c
     # (derived there: in the noise-whitened domain the Gaussian lifted noise
     # covariance is the identity and rho_g is an eigenvector of K, since
@@ -220,7 +223,7 @@ def _best_linear_h(loss, m: int, rng: np.random.Generator) -> float:
     ("two-interferers", 2, 0.0), ("laplace", 2, 10.0),
 ])
 def test_quadratic_wiener_beats_every_lifted_linear_estimator_on_a_squared(
-    kind: str, m: int, snr_db: float
+    kind: str, m: int, snr_db: float, crandn,
 ) -> None:
     # docs/estimators.md §2 and §6, check 6b.
     # Linear estimators are the rank-one subset H = h h^H of the quadratic
@@ -289,7 +292,7 @@ def test_quadratic_wiener_in_sample_and_with_true_statistics_on_samples() -> Non
 
 
 @pytest.mark.parametrize("kind", ["gaussian", "exponential", "two-interferers"])
-def test_affine_lifted_beats_mvdr_power_minus_noise_for_random_power(kind: str) -> None:
+def test_affine_lifted_beats_mvdr_power_minus_noise_for_random_power(kind: str, crandn) -> None:
     # docs/estimators.md §5 and §6, check 6b.
     # Complex Gaussian S: P = |S|^2 is exponential, E[P^2] = 2 lambda^2,
     # Var(P) = lambda^2 (handbook: exponential distribution). Both estimators are unbiased
@@ -343,7 +346,7 @@ def test_random_power_wiener_reduces_to_fixed_magnitude_wiener_when_power_is_fix
 # ----------------------------------------------------------- iterative fixed magnitude
 
 
-def _fixed_magnitude_data(snr_db: float, n: int, rng: np.random.Generator):
+def _fixed_magnitude_data(snr_db: float, n: int, rng: np.random.Generator, crandn):
     m, a2 = 2, 1.0
     noise_power = 10 ** (-snr_db / 10)
     _, g, phi, c_v, rho_g, mu_v, k, _, _ = _fixed_stats("gaussian", m, a2, noise_power)
@@ -355,12 +358,12 @@ def _fixed_magnitude_data(snr_db: float, n: int, rng: np.random.Generator):
 
 @pytest.mark.parametrize("snr_db", [-10.0, 10.0])
 def test_iterative_fixed_magnitude_unbiased_converges_and_naive_is_biased_low(
-    snr_db: float,
+    snr_db: float, crandn,
 ) -> None:
     # docs/estimators.md §6, check 6d.
     # The unbiased update converges in a few steps; the naive update (mean
     # of the per-sample estimates) is biased low and collapses towards zero at low SNR.
-    y, g, phi, c_v, rho_g, mu_v, k = _fixed_magnitude_data(snr_db, 20_000, RNG)
+    y, g, phi, c_v, rho_g, mu_v, k = _fixed_magnitude_data(snr_db, 20_000, RNG, crandn)
     r = lift_snapshots(y)
     start = float(np.mean(np.abs(y[:, 0]) ** 2))  # A^2 + noise power: a high guess
     lin = est.linear_wiener_fixed(y, g, phi, start)
@@ -385,3 +388,19 @@ def test_iterative_fixed_magnitude_unbiased_converges_and_naive_is_biased_low(
         assert float(naive.magnitude_sq) < float(good.magnitude_sq) - 0.05
         if snr_db <= -10:
             assert float(naive.magnitude_sq) < 0.05  # collapsed (measured: to the floor)
+
+
+def test_diagonal_loading_shifts_every_eigenvalue_by_a_share_of_the_mean(random_covariance):
+    # Adding c I to a Hermitian matrix shifts each eigenvalue by c and keeps the eigenvectors
+    # (a standard fact of linear algebra, e.g. Horn & Johnson, Matrix Analysis, chapter 1;
+    # recalled from memory); trace / dim is the mean eigenvalue. The engine loads its lifted
+    # covariance with this same helper.
+    rng = np.random.default_rng(7)
+    stack = np.stack([random_covariance(3, rng, loading=0.01) for _ in range(4)])
+    loaded = est.diagonally_loaded(stack, 0.1)
+    before, after = np.linalg.eigvalsh(stack), np.linalg.eigvalsh(loaded)
+    mean = np.real(np.trace(stack, axis1=-2, axis2=-1)) / 3
+    np.testing.assert_allclose(after - before, 0.1 * mean[:, None] * np.ones(3), rtol=1e-10)
+    assert est.diagonally_loaded(stack, 0.0) is stack
+    with pytest.raises(ValueError, match="diagonal loading"):
+        est.diagonally_loaded(stack, -0.1)

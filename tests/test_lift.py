@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from randmat import random_covariance
 
 from liftmag.estimators import linear_as_lifted, outer
 from liftmag.lift import (
@@ -71,7 +70,9 @@ def test_lift_transform_is_unitary_and_maps_the_column_vec(m: int) -> None:
     np.testing.assert_allclose(t @ vec, lift_snapshots(y), atol=1e-13)
 
 
-def test_gaussian_lift_covariance_matches_monte_carlo_and_is_identity_when_white() -> None:
+def test_gaussian_lift_covariance_matches_monte_carlo_and_is_identity_when_white(
+    random_covariance,
+) -> None:
     # Isserlis (Reed 1962): Cov(vec(v v^H)) = Phi^T kron Phi, lifted by T. White, unit
     # power: identity (each lifted entry has unit variance and they are uncorrelated).
     m = 3

@@ -24,6 +24,7 @@ import stat
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -31,7 +32,6 @@ import pytest
 import soundfile as sf
 
 from liftmag import audio_io
-from liftmag.cli import main
 from liftmag.scenes import demo_scene
 
 FS = 16000
@@ -52,19 +52,9 @@ def take(tmp_path: Path, scene) -> Path:
     return path
 
 
-def run_cli(capsys, *args: str) -> tuple[int, str, str]:
-    rc = main([str(a) for a in args])
-    captured = capsys.readouterr()
-    return rc, captured.out, captured.err
-
-
 def one_line_error(err: str) -> bool:
     lines = err.strip().splitlines()
     return len(lines) == 1 and "error:" in lines[0] and "Traceback" not in err
-
-
-def partials(folder: Path) -> list[Path]:
-    return [p for p in folder.rglob("*") if ".partial-" in p.name]
 
 
 # ------------------------------------------------------------ damaged or changing inputs
@@ -76,14 +66,14 @@ def partials(folder: Path) -> list[Path]:
      ("OGG", "ogg", "VORBIS"), ("FLAC", "flac", "PCM_16")],
 )
 def test_truncated_inputs_are_refused_by_process_and_learn(
-    tmp_path, capsys, scene, fmt, ext, subtype
+    tmp_path, scene, fmt, ext, subtype, run_cli, partials
 ):
     path = tmp_path / f"cut.{ext}"
     sf.write(path, scene.mixture[:, : 4 * FS].T, FS, format=fmt, subtype=subtype)
     raw = path.read_bytes()
     path.write_bytes(raw[: len(raw) * 2 // 3])  # as an interrupted copy leaves it
     for verb, out in (("process", "out." + ext), ("learn", "model.npz")):
-        rc, _, err = run_cli(capsys, verb, path, "-o", tmp_path / out)
+        rc, _, err = run_cli(verb, path, "-o", tmp_path / out)
         assert rc == 2 and one_line_error(err), (verb, err)
         assert "truncated" in err or "damaged" in err
         assert not (tmp_path / out).exists() and partials(tmp_path) == []
@@ -100,81 +90,81 @@ def test_an_input_cut_while_being_read_is_refused(tmp_path, take):
 
 
 def test_more_microphones_than_the_stated_limit_are_refused_before_any_work(
-    tmp_path, capsys, scene
+    tmp_path, scene, run_cli
 ):
     # 17 channels: one more than the limit the README states.
     path = tmp_path / "many.wav"
     many = np.tile(scene.mixture[:, : 2 * FS], (9, 1))[: audio_io.MAX_CHANNELS + 1]
     sf.write(path, many.T, FS, subtype="PCM_16")
     for verb, out in (("process", "o.wav"), ("learn", "m.npz")):
-        rc, _, err = run_cli(capsys, verb, path, "-o", tmp_path / out)
+        rc, _, err = run_cli(verb, path, "-o", tmp_path / out)
         assert rc == 2 and one_line_error(err) and "at most 16" in err, err
     # A poly file with more tracks than that is fine when the array uses fewer of them.
-    rc, _, err = run_cli(capsys, "process", path, "-o", tmp_path / "o.wav", "--mics", "1,2")
+    rc, _, err = run_cli("process", path, "-o", tmp_path / "o.wav", "--mics", "1,2")
     assert rc == 0, err
 
 
 # ------------------------------------------------------------ nothing read is written over
 
 
-def test_force_never_replaces_a_fifo(tmp_path, capsys, take):
+def test_force_never_replaces_a_fifo(tmp_path, take, run_cli):
     fifo = tmp_path / "pipe.wav"
     os.mkfifo(fifo)
-    rc, _, err = run_cli(capsys, "process", take, "-o", fifo, "--force")
+    rc, _, err = run_cli("process", take, "-o", fifo, "--force")
     assert rc == 2 and one_line_error(err) and "not a regular file" in err
     assert stat.S_ISFIFO(os.lstat(fifo).st_mode)  # POSIX S_ISFIFO: still the FIFO
     assert "--force" not in err
-    rc, _, err = run_cli(capsys, "learn", take, "-o", fifo, "--force")
+    rc, _, err = run_cli("learn", take, "-o", fifo, "--force")
     assert rc == 2 and one_line_error(err) and stat.S_ISFIFO(os.lstat(fifo).st_mode)
 
 
 @pytest.mark.skipif(os.geteuid() != 0, reason="replacing a device node needs root")
-def test_force_never_replaces_a_device(tmp_path, capsys, take):
+def test_force_never_replaces_a_device(tmp_path, take, run_cli):
     device = tmp_path / "null"
     os.mknod(device, 0o666 | stat.S_IFCHR, os.makedev(1, 3))  # Linux: /dev/null is 1, 3
-    rc, _, err = run_cli(capsys, "process", take, "-o", device, "--force")
+    rc, _, err = run_cli("process", take, "-o", device, "--force")
     assert rc == 2 and one_line_error(err)
     assert stat.S_ISCHR(os.lstat(device).st_mode)
 
 
-def test_learn_never_writes_over_its_room_tone(tmp_path, capsys, take):
+def test_learn_never_writes_over_its_room_tone(tmp_path, take, run_cli):
     before = take.read_bytes()
-    rc, _, err = run_cli(capsys, "learn", take, "-o", take, "--force")
+    rc, _, err = run_cli("learn", take, "-o", take, "--force")
     assert rc == 2 and one_line_error(err) and "input" in err
     assert take.read_bytes() == before
 
 
-def test_existing_input_or_folder_gets_no_force_advice(tmp_path, capsys, take):
-    rc, _, err = run_cli(capsys, "process", take, "-o", take)
+def test_existing_input_or_folder_gets_no_force_advice(tmp_path, take, run_cli):
+    rc, _, err = run_cli("process", take, "-o", take)
     assert rc == 2 and "is an input" in err and "--force" not in err
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path)
+    rc, _, err = run_cli("process", take, "-o", tmp_path)
     assert rc == 2 and "folder" in err and "--force" not in err
-    rc, _, err = run_cli(capsys, "learn", take, "-o", tmp_path)
+    rc, _, err = run_cli("learn", take, "-o", tmp_path)
     assert rc == 2 and "folder" in err and "--force" not in err
 
 
 # ------------------------------------------------------------ output container from the name
 
 
-def test_output_container_follows_the_extension_and_keeps_what_it_can(tmp_path, capsys, take):
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "out.flac")
+def test_output_container_follows_the_extension_and_keeps_what_it_can(tmp_path, take, run_cli):
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "out.flac")
     assert rc == 0, err
     info = sf.info(str(tmp_path / "out.flac"))
     assert (info.format, info.subtype) == ("FLAC", "PCM_16")  # the input's subtype, kept
     assert "WAV PCM_16 in, FLAC PCM_16 out" in err
     float_take = tmp_path / "float.wav"
     sf.write(float_take, sf.read(take)[0], FS, subtype="FLOAT")
-    rc, _, err = run_cli(capsys, "process", float_take, "-o", tmp_path / "f.flac")
+    rc, _, err = run_cli("process", float_take, "-o", tmp_path / "f.flac")
     # FLAC holds integers only (FLAC format: 4 to 32 bits per sample in libsndfile's 8-24).
     assert rc == 0 and sf.info(str(tmp_path / "f.flac")).subtype == "PCM_24"
     assert "WAV FLOAT in, FLAC PCM_24 out" in err
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "same.wav")
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "same.wav")
     assert rc == 0 and "out (from the name" not in err
     assert sf.info(str(tmp_path / "same.wav")).subtype == "PCM_16"
 
 
-def test_unknown_output_extension_is_refused_in_one_line(tmp_path, capsys, take):
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "out.xyz")
+def test_unknown_output_extension_is_refused_in_one_line(tmp_path, take, run_cli, partials):
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "out.xyz")
     assert rc == 2 and one_line_error(err) and ".xyz" in err
     assert not (tmp_path / "out.xyz").exists() and partials(tmp_path) == []
 
@@ -182,16 +172,16 @@ def test_unknown_output_extension_is_refused_in_one_line(tmp_path, capsys, take)
 # ------------------------------------------------------------ one line, not a traceback
 
 
-def test_long_legal_output_name_is_written(tmp_path, capsys, take):
+def test_long_legal_output_name_is_written(tmp_path, take, run_cli, partials):
     name = "n" * (255 - len(".wav")) + ".wav"  # NAME_MAX: the longest name ext4 takes
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / name)
+    rc, _, err = run_cli("process", take, "-o", tmp_path / name)
     assert rc == 0, err
     assert (tmp_path / name).is_file() and partials(tmp_path) == []
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / ("m" * 300 + ".wav"))
+    rc, _, err = run_cli("process", take, "-o", tmp_path / ("m" * 300 + ".wav"))
     assert rc == 2 and one_line_error(err)
 
 
-def test_read_only_folder_is_one_line(tmp_path, capsys, take, monkeypatch):
+def test_read_only_folder_is_one_line(tmp_path, take, monkeypatch, run_cli):
     folder = tmp_path / "ro"
     folder.mkdir()
     real_open = os.open
@@ -204,7 +194,7 @@ def test_read_only_folder_is_one_line(tmp_path, capsys, take, monkeypatch):
 
     monkeypatch.setattr(os, "open", refusing_open)
     for verb, out in (("process", "out.wav"), ("learn", "m.npz")):
-        rc, _, err = run_cli(capsys, verb, take, "-o", folder / out)
+        rc, _, err = run_cli(verb, take, "-o", folder / out)
         assert rc == 2 and one_line_error(err) and "Permission denied" in err, err
     assert list(folder.iterdir()) == []
 
@@ -217,7 +207,7 @@ def _limit_file_size(limit_bytes: int):
 
 
 @pytest.mark.parametrize("verb", ["process", "learn"])
-def test_full_disk_is_one_line_and_leaves_nothing(tmp_path, take, verb):
+def test_full_disk_is_one_line_and_leaves_nothing(tmp_path, take, verb, partials):
     out = tmp_path / ("out.wav" if verb == "process" else "m.npz")
     done = subprocess.run(
         [*LIFTMAG, verb, str(take), "-o", str(out)],
@@ -231,7 +221,9 @@ def test_full_disk_is_one_line_and_leaves_nothing(tmp_path, take, verb):
 # ------------------------------------------------------------ signals leave nothing partial
 
 
-def _stop_while_writing(proc: subprocess.Popen, folder: Path, timeout_s: float = 120.0) -> bool:
+def _stop_while_writing(
+    proc: subprocess.Popen, folder: Path, partials: Callable, timeout_s: float = 120.0
+) -> bool:
     """Poll for a temporary file, then SIGSTOP the process; True if it is stopped mid-write.
 
     Stopped (SIGSTOP cannot be caught, POSIX), the process cannot finish; with its temporary
@@ -260,7 +252,7 @@ def _wait_stopped(pid: int) -> None:
 
 @pytest.mark.skipif(not Path("/proc/self/stat").is_file(), reason="needs Linux /proc")
 @pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGHUP])
-def test_sigterm_and_sighup_to_process_leave_no_partial(tmp_path, scene, signum):
+def test_sigterm_and_sighup_to_process_leave_no_partial(tmp_path, scene, signum, partials):
     long_take = tmp_path / "long.wav"
     sf.write(long_take, np.tile(scene.mixture, 6).T, FS, subtype="PCM_16")
     out = tmp_path / "out"
@@ -271,7 +263,7 @@ def test_sigterm_and_sighup_to_process_leave_no_partial(tmp_path, scene, signum)
              str(out / "clean.wav"), "--force"],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
         )
-        caught = _stop_while_writing(proc, out)
+        caught = _stop_while_writing(proc, out, partials)
         if caught:
             os.kill(proc.pid, signum)
             os.kill(proc.pid, signal.SIGCONT)
@@ -329,16 +321,16 @@ def _source_of(scene):
      ({"frame_length": 0}, "frame")],
 )
 def test_model_with_the_right_tag_but_bad_metadata_is_one_line(
-    tmp_path, capsys, take, learned, changes, words
+    tmp_path, take, learned, changes, words, run_cli
 ):
     model = _model_file(tmp_path / "m.npz", learned, **changes)
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav", "--noise-model",
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "o.wav", "--noise-model",
                          model)
     assert rc == 2 and one_line_error(err) and words in err, err
     assert not (tmp_path / "o.wav").exists()
 
 
-def test_all_zero_model_and_silent_room_tone_are_refused(tmp_path, capsys, take, learned):
+def test_all_zero_model_and_silent_room_tone_are_refused(tmp_path, take, learned, run_cli):
     import dataclasses
 
     silent = dataclasses.replace(
@@ -346,12 +338,12 @@ def test_all_zero_model_and_silent_room_tone_are_refused(tmp_path, capsys, take,
         lift_second_moment=np.zeros_like(learned.lift_second_moment),
     )
     (tmp_path / "zero.npz").write_bytes(silent.to_bytes())
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav", "--noise-model",
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "o.wav", "--noise-model",
                          tmp_path / "zero.npz")
     assert rc == 2 and one_line_error(err) and "silent" in err, err
     tone = tmp_path / "zeros.wav"
     sf.write(tone, np.zeros((5 * FS, 2)), FS, subtype="PCM_16")  # digital silence
-    rc, _, err = run_cli(capsys, "learn", tone, "-o", tmp_path / "m.npz")
+    rc, _, err = run_cli("learn", tone, "-o", tmp_path / "m.npz")
     assert rc == 2 and one_line_error(err) and "silent" in err
     assert not (tmp_path / "m.npz").exists()
 
@@ -368,12 +360,12 @@ def test_a_region_given_three_times_counts_once(scene):
     np.testing.assert_allclose(thrice.covariance, once.covariance)
 
 
-def test_a_dead_microphone_is_warned_about(tmp_path, capsys, scene):
+def test_a_dead_microphone_is_warned_about(tmp_path, scene, run_cli):
     take = tmp_path / "dead.wav"
     data = scene.mixture[:, : 4 * FS].T.copy()
     data[:, 1] = 0.0  # capsule 2 unplugged: digital silence
     sf.write(take, data, FS, subtype="PCM_16")
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav")
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "o.wav")
     assert rc == 0
     assert "channel 2" in err and "silent" in err
 
@@ -381,21 +373,21 @@ def test_a_dead_microphone_is_warned_about(tmp_path, capsys, scene):
 # ------------------------------------------------------------ other verbs, one line each
 
 
-def test_demo_refuses_nan_snr_and_force_never_deletes_foreign_files(tmp_path, capsys):
-    rc, _, err = run_cli(capsys, "demo", "--out", tmp_path / "d", "--snr-db", "nan")
+def test_demo_refuses_nan_snr_and_force_never_deletes_foreign_files(tmp_path, run_cli):
+    rc, _, err = run_cli("demo", "--out", tmp_path / "d", "--snr-db", "nan")
     assert rc == 2 and one_line_error(err) and not (tmp_path / "d").exists()
     folder = tmp_path / "mine"
     folder.mkdir()
     (folder / "thesis.txt").write_text("years of work")
-    rc, _, err = run_cli(capsys, "demo", "--out", folder, "--force")
+    rc, _, err = run_cli("demo", "--out", folder, "--force")
     assert rc == 2 and one_line_error(err) and "thesis.txt" in err
     assert (folder / "thesis.txt").read_text() == "years of work"
 
 
 @pytest.mark.parametrize(("out", "words"), [("missing/p.png", "does not exist"),
                                             ("p.wav", "extension")])
-def test_pattern_out_missing_folder_or_non_image_is_one_line(tmp_path, capsys, out, words):
-    rc, _, err = run_cli(capsys, "pattern", "--out", tmp_path / out)
+def test_pattern_out_missing_folder_or_non_image_is_one_line(tmp_path, out, words, run_cli):
+    rc, _, err = run_cli("pattern", "--out", tmp_path / out)
     assert rc == 2 and one_line_error(err) and words in err, err
     assert list(tmp_path.iterdir()) == []
 
@@ -423,12 +415,12 @@ def _bwf_with_riff_size(path: Path, scene, riff_size: int, data_size: int | None
 @pytest.mark.parametrize(("riff_size", "data_size"),
                          [(0xFFFFFFFF, None), (0, None), (0xFFFFFFFF, 0xFFFFFFFF)])
 def test_streaming_writers_size_fields_are_read_in_full_and_chunks_carried(
-    tmp_path, capsys, scene, riff_size, data_size
+    tmp_path, scene, riff_size, data_size, run_cli
 ):
     take = tmp_path / "streamed.wav"
     bext = _bwf_with_riff_size(take, scene, riff_size, data_size)
     assert sf.info(str(take)).frames == 3 * FS  # libsndfile reads the audio in full
-    rc, _, err = run_cli(capsys, "process", take, "-o", tmp_path / "o.wav")
+    rc, _, err = run_cli("process", take, "-o", tmp_path / "o.wav")
     assert rc == 0, err
     from liftmag import riffchunks
 

@@ -18,7 +18,6 @@ import numpy as np
 import pytest
 
 from liftmag import estimators as est
-from liftmag.cli import main
 from liftmag.commands.pattern import compute_patterns
 from liftmag.geometry import linear_array_m, steering_vectors
 
@@ -65,15 +64,9 @@ def test_quadratic_wiener_does_not_null_two_gaussian_interferers(inr_db: float) 
     np.testing.assert_allclose(b["lifted-mv"], b["mvdr"], rtol=1e-9)
 
 
-def run_cli(capsys, *argv: str) -> tuple[int, str, str]:
-    code = main(list(argv))
-    captured = capsys.readouterr()
-    return code, captured.out, captured.err
-
-
-def test_pattern_cli_defaults_write_png_and_json(tmp_path, capsys) -> None:
+def test_pattern_cli_defaults_write_png_and_json(tmp_path, run_cli) -> None:
     out = tmp_path / "p.png"
-    code, stdout, _ = run_cli(capsys, "pattern", "--json", "--out", str(out))
+    code, stdout, _ = run_cli("pattern", "--json", "--out", str(out))
     assert code == 0
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     doc = json.loads(stdout)
@@ -100,11 +93,11 @@ def test_pattern_cli_defaults_write_png_and_json(tmp_path, capsys) -> None:
                                10 * np.log10(np.abs(b[finite])), atol=1e-9)
 
 
-def test_pattern_cli_marks_negative_power(tmp_path, capsys) -> None:
+def test_pattern_cli_marks_negative_power(tmp_path, run_cli) -> None:
     # Three mics and four nulls: the minimum-norm H is indefinite and B < 0 between the
     # nulls near endfire; the JSON sign must say so where the core's B is negative.
     code, stdout, _ = run_cli(
-        capsys, "pattern", "--mics", "3", "--null-deg", "0,30", "--null-deg", "150,180",
+        "pattern", "--mics", "3", "--null-deg", "0,30", "--null-deg", "150,180",
         "--estimators", "lifted-nulls", "--json", "--out", str(tmp_path / "p.png"),
     )
     assert code == 0
@@ -121,9 +114,9 @@ def test_pattern_cli_marks_negative_power(tmp_path, capsys) -> None:
     np.testing.assert_array_equal(sign[clear], np.sign(b[clear]))
 
 
-def test_pattern_cli_positions_and_statistics_estimators(tmp_path, capsys) -> None:
+def test_pattern_cli_positions_and_statistics_estimators(tmp_path, run_cli) -> None:
     code, stdout, _ = run_cli(
-        capsys, "pattern", "--positions-m=-0.05,0,0.07", "--frequency-hz", "1500",
+        "pattern", "--positions-m=-0.05,0,0.07", "--frequency-hz", "1500",
         "--target-deg", "70", "--null-deg", "20", "--estimators",
         "linear-wiener,lifted-affine,lifted-wiener,lifted-nulls", "--json",
         "--out", str(tmp_path / "p.png"),
@@ -145,8 +138,8 @@ def test_pattern_cli_positions_and_statistics_estimators(tmp_path, capsys) -> No
     (["--null-deg", "90"], "linearly dependent"),
     (["--positions-m", "0,0.1", "--mics", "2"], "not both"),
 ])
-def test_pattern_cli_refuses_impossible_requests(tmp_path, capsys, argv, message) -> None:
-    code, _, stderr = run_cli(capsys, "pattern", *argv, "--out", str(tmp_path / "p.png"))
+def test_pattern_cli_refuses_impossible_requests(tmp_path, argv, message, run_cli) -> None:
+    code, _, stderr = run_cli("pattern", *argv, "--out", str(tmp_path / "p.png"))
     assert code == 2
     assert message in stderr
     assert len(stderr.strip().splitlines()) == 1

@@ -30,24 +30,15 @@ RATE_HZ = 48_000
 TIME_REFERENCE_SAMPLES = 2 * 2**32 + 12_345
 
 
-def hand_packed_bext(time_reference_samples: int = TIME_REFERENCE_SAMPLES) -> bytes:
-    """A bext payload packed field by field from the EBU Tech 3285 v2 table."""
-    fields = [
-        b"Scene 12 take 3".ljust(256, b"\0"),  # Description, 256 bytes
-        b"liftmag-test".ljust(32, b"\0"),  # Originator, 32
-        b"REF0001".ljust(32, b"\0"),  # OriginatorReference, 32
-        b"2024-05-17",  # OriginationDate, 10 (yyyy-mm-dd)
-        b"14:03:59",  # OriginationTime, 8 (hh:mm:ss)
-        struct.pack("<I", time_reference_samples & 0xFFFFFFFF),  # TimeReferenceLow
-        struct.pack("<I", time_reference_samples >> 32),  # TimeReferenceHigh
-        struct.pack("<H", 2),  # Version
-        bytes(range(64)),  # UMID, 64
-        # Loudness words are value x 100 (EBU Tech 3285 v2 section 2.4); -23.00 LUFS etc.
-        struct.pack("<5h", -2300, 450, -150, -1800, -2000),
-        b"\0" * 180,  # Reserved
-        b"A=PCM,F=48000,W=24,M=stereo,T=test\r\n",  # CodingHistory (EBU R 98 row)
-    ]
-    return b"".join(fields)
+# The bext chunk of the test file; 2 * 2**32 + 12345 samples exercise the High word.
+BEXT = dict(
+    description=b"Scene 12 take 3", originator=b"liftmag-test", reference=b"REF0001",
+    date=b"2024-05-17", time=b"14:03:59", time_reference_samples=TIME_REFERENCE_SAMPLES,
+    umid=bytes(range(64)),
+    # Loudness words are value x 100 (EBU Tech 3285 v2 section 2.4): -23.00 LUFS etc.
+    loudness=(-2300, 450, -150, -1800, -2000),
+    coding_history=b"A=PCM,F=48000,W=24,M=stereo,T=test\r\n",  # an EBU R 98 row
+)
 
 
 IXML = b'<?xml version="1.0" encoding="UTF-8"?>\n<BWFXML><PROJECT>p</PROJECT></BWFXML>\n'
@@ -66,18 +57,18 @@ def plain_wav(tmp_path: Path) -> Path:
 
 
 @pytest.fixture
-def bwf(tmp_path: Path, plain_wav: Path) -> Path:
+def bwf(tmp_path: Path, plain_wav: Path, pack_bext) -> Path:
     path = tmp_path / "take.wav"
-    rc.copy_with_chunks(plain_wav, path, [("bext", hand_packed_bext()), ("iXML", IXML)])
+    rc.copy_with_chunks(plain_wav, path, [("bext", pack_bext(**BEXT)), ("iXML", IXML)])
     return path
 
 
-def test_inserted_chunks_sit_before_data_and_read_back_byte_for_byte(bwf: Path) -> None:
+def test_inserted_chunks_sit_before_data_and_read_back_byte_for_byte(bwf: Path, pack_bext) -> None:
     ids = [c.chunk_id for c in rc.list_chunks(bwf)]
     assert ids == ["fmt ", "bext", "iXML", "data"]
-    assert rc.read_bext(bwf) == hand_packed_bext()
+    assert rc.read_bext(bwf) == pack_bext(**BEXT)
     assert rc.read_ixml(bwf) == IXML
-    assert rc.chunks_to_carry(bwf) == (("bext", hand_packed_bext()), ("iXML", IXML))
+    assert rc.chunks_to_carry(bwf) == (("bext", pack_bext(**BEXT)), ("iXML", IXML))
 
 
 def test_riff_size_is_file_size_minus_8(bwf: Path) -> None:
@@ -105,8 +96,8 @@ def test_time_reference_at_the_spec_offset(bwf: Path) -> None:
     assert rc.parse_bext(payload).time_reference_samples == TIME_REFERENCE_SAMPLES
 
 
-def test_parse_bext_fields() -> None:
-    info = rc.parse_bext(hand_packed_bext())
+def test_parse_bext_fields(pack_bext) -> None:
+    info = rc.parse_bext(pack_bext(**BEXT))
     assert info.description == "Scene 12 take 3"
     assert info.originator == "liftmag-test"
     assert info.originator_reference == "REF0001"
@@ -120,8 +111,8 @@ def test_parse_bext_fields() -> None:
     assert info.coding_history == "A=PCM,F=48000,W=24,M=stereo,T=test\r\n"
 
 
-def test_version_1_bext_has_no_loudness() -> None:
-    payload = bytearray(hand_packed_bext())
+def test_version_1_bext_has_no_loudness(pack_bext) -> None:
+    payload = bytearray(pack_bext(**BEXT))
     struct.pack_into("<H", payload, 346, 1)  # Version sits after the two uint32 words
     assert rc.parse_bext(bytes(payload)).loudness_value_lufs is None
 
@@ -142,9 +133,11 @@ def test_copy_keeps_audio_for_independent_readers(plain_wav: Path, bwf: Path) ->
         assert b.readframes(1001) == a.readframes(1001)
 
 
-def test_inserting_again_replaces_rather_than_duplicates(tmp_path: Path, bwf: Path) -> None:
+def test_inserting_again_replaces_rather_than_duplicates(
+    tmp_path: Path, bwf: Path, pack_bext
+) -> None:
     out = tmp_path / "again.wav"
-    new_bext = hand_packed_bext(time_reference_samples=96_000)
+    new_bext = pack_bext(**{**BEXT, "time_reference_samples": 96_000})
     rc.copy_with_chunks(bwf, out, [("bext", new_bext)])
     ids = [c.chunk_id for c in rc.list_chunks(out)]
     assert ids.count("bext") == 1
@@ -167,17 +160,17 @@ def test_data_is_streamed_in_blocks(
     )
 
 
-def test_rf64_ds64_size_is_fixed(tmp_path: Path) -> None:
+def test_rf64_ds64_size_is_fixed(tmp_path: Path, pack_bext) -> None:
     src, out = tmp_path / "big.wav", tmp_path / "big_bwf.wav"
     sf.write(src, signal(), RATE_HZ, format="RF64", subtype="PCM_24")
-    rc.copy_with_chunks(src, out, [("bext", hand_packed_bext()), ("iXML", IXML)])
+    rc.copy_with_chunks(src, out, [("bext", pack_bext(**BEXT)), ("iXML", IXML)])
     raw = out.read_bytes()
     # EBU Tech 3306: RF64 header size is 0xFFFFFFFF; ds64 riffSize (uint64 at byte 20)
     # holds the real file size - 8.
     assert raw[:4] == b"RF64" and raw[12:16] == b"ds64"
     assert struct.unpack_from("<I", raw, 4)[0] == 0xFFFFFFFF
     assert struct.unpack_from("<Q", raw, 20)[0] == len(raw) - 8
-    assert rc.read_bext(out) == hand_packed_bext()
+    assert rc.read_bext(out) == pack_bext(**BEXT)
     assert rc.read_ixml(out) == IXML
     np.testing.assert_array_equal(sf.read(out)[0], sf.read(src)[0])
 
@@ -325,8 +318,8 @@ def test_coding_history_line_layout() -> None:
         rc.coding_history_line(48_000, 24, 6, "x", mode="5.1")
 
 
-def test_append_coding_history_keeps_fixed_fields_and_earlier_rows() -> None:
-    bext = hand_packed_bext()
+def test_append_coding_history_keeps_fixed_fields_and_earlier_rows(pack_bext) -> None:
+    bext = pack_bext(**BEXT)
     line = rc.coding_history_line(48_000, 24, 1, "liftmag")
     out = rc.append_coding_history(bext, line)
     # EBU Tech 3285: the 602 bytes before CodingHistory are the fixed fields.
@@ -345,9 +338,9 @@ def test_append_coding_history_keeps_fixed_fields_and_earlier_rows() -> None:
     assert rc.append_coding_history(bext[:602], line) == bext[:602] + line.encode()
 
 
-def test_append_coding_history_refuses_bad_input() -> None:
+def test_append_coding_history_refuses_bad_input(pack_bext) -> None:
     with pytest.raises(ValueError, match="602"):
         rc.append_coding_history(b"\0" * 100, "A=PCM\r\n")
     for bad in ("A=PCM", "A=PCM\r\nA=PCM\r\n", "A=PCM,T=é\r\n"):
         with pytest.raises(ValueError, match="one line of ASCII"):
-            rc.append_coding_history(hand_packed_bext(), bad)
+            rc.append_coding_history(pack_bext(**BEXT), bad)

@@ -46,21 +46,13 @@ R98_ROW = re.compile(
 )  # EBU R 98: the free text T= is printable ASCII without commas (',' is 0x2C)
 
 
-def bext_payload(history: bytes = b"A=PCM,F=16000,W=24,M=mono,T=recorder\r\n") -> bytes:
-    # EBU Tech 3285 v2 field order and sizes.
-    return b"".join([
-        b"sc12 tk3".ljust(256, b"\0"),
-        b"INVENTED RECORDER".ljust(32, b"\0"),
-        b"ref-0012-0003".ljust(32, b"\0"),
-        b"2026-11-30",
-        b"07:00:00",
-        struct.pack("<II", TIME_REFERENCE & 0xFFFFFFFF, TIME_REFERENCE >> 32),
-        struct.pack("<H", 2),
-        bytes(range(64)),
-        struct.pack("<5h", -2400, 500, -300, -2000, -2100),
-        b"\0" * 180,
-        history,
-    ])
+# The recorder's bext chunk of the invented take.
+BEXT = dict(
+    description=b"sc12 tk3", originator=b"INVENTED RECORDER", reference=b"ref-0012-0003",
+    date=b"2026-11-30", time=b"07:00:00", time_reference_samples=TIME_REFERENCE,
+    umid=bytes(range(64)), loudness=(-2400, 500, -300, -2000, -2100),
+    coding_history=b"A=PCM,F=16000,W=24,M=mono,T=recorder\r\n",
+)
 
 
 def ixml_payload(names=NAMES, channel_indices=None, interleave=True) -> bytes:
@@ -111,10 +103,10 @@ def four_track(scene) -> np.ndarray:
 
 
 @pytest.fixture()
-def poly(tmp_path: Path, four_track) -> Path:
+def poly(tmp_path: Path, four_track, pack_bext) -> Path:
     return write_take(
         tmp_path / "sc12_tk3.wav", four_track,
-        [("bext", bext_payload()), ("iXML", ixml_payload())],
+        [("bext", pack_bext(**BEXT)), ("iXML", ixml_payload())],
     )
 
 
@@ -399,13 +391,13 @@ def test_tracks_verb_lists_number_name_and_level(poly: Path, capsys, four_track)
 # ------------------------------------------------------- files without metadata
 
 
-def test_no_ixml_is_invented(tmp_path: Path, four_track) -> None:
-    bare = write_take(tmp_path / "bare.wav", four_track, [("bext", bext_payload())])
+def test_no_ixml_is_invented(tmp_path: Path, four_track, pack_bext) -> None:
+    bare = write_take(tmp_path / "bare.wav", four_track, [("bext", pack_bext(**BEXT))])
     out = tmp_path / "out.wav"
     assert main(["process", str(bare), "-o", str(out), "--mics", "1,2",
                  "--output-mode", "same-tracks"]) == 0
     assert rc.read_ixml(out) is None
-    assert rc.read_bext(out)[:602] == bext_payload()[:602]
+    assert rc.read_bext(out)[:602] == pack_bext(**BEXT)[:602]
     plain = write_take(tmp_path / "plain.wav", four_track[:2], [])
     out2 = tmp_path / "out2.wav"
     assert main(["process", str(plain), "-o", str(out2)]) == 0
@@ -423,10 +415,10 @@ def test_ixml_without_track_list_is_kept_as_it_was(tmp_path: Path, four_track) -
 # --------------------------------------------------------------------- RF64
 
 
-def test_forced_rf64_take_keeps_working(tmp_path: Path, four_track) -> None:
+def test_forced_rf64_take_keeps_working(tmp_path: Path, four_track, pack_bext) -> None:
     take = write_take(
         tmp_path / "big.wav", four_track,
-        [("bext", bext_payload()), ("iXML", ixml_payload())], fmt="RF64",
+        [("bext", pack_bext(**BEXT)), ("iXML", ixml_payload())], fmt="RF64",
     )
     assert take.read_bytes()[:4] == b"RF64"
     out = tmp_path / "same.wav"
@@ -443,14 +435,14 @@ def test_forced_rf64_take_keeps_working(tmp_path: Path, four_track) -> None:
     check_kept_metadata(out, take)
 
 
-def test_tracks_of_a_sparse_rf64_file_beyond_4_gib(tmp_path: Path) -> None:
+def test_tracks_of_a_sparse_rf64_file_beyond_4_gib(tmp_path: Path, pack_bext) -> None:
     """A > 4 GiB RF64 take, mostly a hole in a sparse file: names come from its iXML."""
     from liftmag import audio_io
     from liftmag.tracks import source_tracks
 
     small = write_take(
         tmp_path / "small.wav", np.zeros((4, 10)),
-        [("bext", bext_payload()), ("iXML", ixml_payload())], fmt="RF64",
+        [("bext", pack_bext(**BEXT)), ("iXML", ixml_payload())], fmt="RF64",
     )
     raw = bytearray(small.read_bytes())
     data = next(c for c in rc.list_chunks(small) if c.chunk_id == "data")
@@ -486,13 +478,13 @@ def stem_ixml(name: str, recorder_track: int) -> bytes:
 
 
 @pytest.fixture()
-def stems(tmp_path: Path, four_track) -> Path:
+def stems(tmp_path: Path, four_track, pack_bext) -> Path:
     folder = tmp_path / "card"
     folder.mkdir()
     for k, name in enumerate(NAMES[:3], start=1):
         write_take(
             folder / f"sc12_tk3_{k}.wav", four_track[k - 1 : k],
-            [("bext", bext_payload()), ("iXML", stem_ixml(name, k))],
+            [("bext", pack_bext(**BEXT)), ("iXML", stem_ixml(name, k))],
         )
     return folder
 

@@ -9,8 +9,10 @@ speech-active samples, and matched to its loudness for listening.
 
 from __future__ import annotations
 
+import json
 import math
 import random
+import re
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TypeVar
@@ -549,3 +551,70 @@ def blind_labels(names: Sequence[str], rng: random.Random | None = None) -> dict
     order = list(names)
     gen.shuffle(order)
     return {f"{BLIND_PREFIX}{i + 1}": name for i, name in enumerate(order)}
+
+
+# The blind key: which neutral file is which version. A JSON object kept beside the blind
+# folder; ``liftmag compare --reveal`` reads it back.
+KEY_FORMAT = "liftmag-blind-key"
+KEY_FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class BlindTake:
+    """One blind file as the key records it (``sha256`` of the file as written)."""
+
+    file: str  # e.g. "take-2.wav", inside the key's blind folder
+    name: str  # the version behind it ("original", "liftmag", or a NAME given by the user)
+    source: str  # the file the version was read from (absolute)
+    gain_db: float = 0.0  # listening gain applied to it
+    sha256: str | None = None
+
+
+def blind_label_order(labels: Iterable[str]) -> list[str]:
+    """Labels in their number order (``take-2`` before ``take-10``)."""
+    return sorted(labels, key=lambda t: int(t.removeprefix(BLIND_PREFIX)))
+
+
+def blind_key_json(blind_folder: str, takes: Sequence[BlindTake]) -> str:
+    """The key as JSON text, takes in the order given (gains to 0.001 dB)."""
+    key = {
+        "format": KEY_FORMAT,
+        "format_version": KEY_FORMAT_VERSION,
+        "blind_folder": blind_folder,
+        "takes": {
+            t.file: {
+                "name": t.name,
+                "source": t.source,
+                "gain_db": round(t.gain_db, 3),
+                "sha256": t.sha256,
+            }
+            for t in takes
+        },
+    }
+    return json.dumps(key, indent=2) + "\n"
+
+
+def parse_blind_key(text: str) -> tuple[str, list[BlindTake]]:
+    """``(blind_folder, takes)`` from a key's JSON text, takes in file-number order.
+
+    Raises ``ValueError`` if the text is not a liftmag blind key.
+    """
+    try:
+        key = json.loads(text)
+        if key.get("format") != KEY_FORMAT:
+            raise ValueError
+        folder = str(key["blind_folder"])
+        takes = key["takes"]
+        order = sorted(takes, key=lambda t: int(re.sub(r"\D", "", t) or 0))
+        return folder, [
+            BlindTake(
+                file=label,
+                name=str(takes[label]["name"]),
+                source=str(takes[label]["source"]),
+                gain_db=float(takes[label].get("gain_db", 0.0)),
+                sha256=takes[label].get("sha256"),
+            )
+            for label in order
+        ]
+    except (ValueError, KeyError, TypeError, AttributeError):
+        raise ValueError("not a liftmag blind key") from None

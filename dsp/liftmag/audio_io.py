@@ -13,9 +13,11 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import hashlib
 import math
 import os
 import secrets
+import shutil
 import stat
 import struct
 from collections.abc import Iterator, Sequence
@@ -27,6 +29,7 @@ import numpy as np
 import soundfile as sf
 
 from liftmag import riffchunks
+from liftmag.errors import LiftmagError
 
 __all__ = [
     "MAX_CHANNELS",
@@ -36,6 +39,7 @@ __all__ = [
     "AudioInputError",
     "AudioOutputError",
     "OutputExistsError",
+    "StagedOutputs",
     "WriteReport",
     "carried_chunks",
     "open_group",
@@ -46,7 +50,9 @@ __all__ = [
     "remove_stale_temp",
     "require_at_most_max_mics",
     "require_multichannel",
+    "sha256_file",
     "temp_prefix",
+    "write_atomically",
 ]
 
 PathLike = str | os.PathLike[str]
@@ -72,15 +78,16 @@ _CONTAINERS = {
     ".flac": "FLAC", ".aif": "AIFF", ".aiff": "AIFF", ".aifc": "AIFF", ".caf": "CAF",
     ".ogg": "OGG", ".oga": "OGG", ".opus": "OGG", ".mp3": "MP3", ".au": "AU", ".snd": "AU",
 }
+HASH_CHUNK_BYTES = 1 << 20  # sha256_file reads this much at a time
 # Longest file name most file systems take (ext4, XFS, btrfs, APFS: 255 bytes).
 _NAME_MAX_BYTES = 255
 
 
-class AudioInputError(ValueError):
+class AudioInputError(LiftmagError, ValueError):
     """An input audio file is missing, unreadable, unsuitable or holds bad samples."""
 
 
-class AudioOutputError(ValueError):
+class AudioOutputError(LiftmagError, ValueError):
     """The output cannot be written where or how it was asked."""
 
 
@@ -963,7 +970,11 @@ def remove_stale_temp(path: PathLike) -> bool:
     try:
         if not _lock_if_still_there(fd, Path(path)):
             return False
-        os.unlink(path)
+        if stat.S_ISDIR(os.fstat(fd).st_mode):
+            # A directory staged by StagedOutputs.stage_dir (a plugin bundle, say).
+            shutil.rmtree(path)
+        else:
+            os.unlink(path)
         return True
     except FileNotFoundError:
         return False
@@ -1002,3 +1013,197 @@ def write_atomically(path: Path, data: bytes) -> None:
         raise
     finally:
         _release(lock_fd)
+
+
+def sha256_file(path: PathLike) -> str:
+    """Hex SHA-256 of a file's bytes, read in chunks so memory does not grow with the file."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(HASH_CHUNK_BYTES):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def _create_temp_dir(destination: Path) -> tuple[Path, int | None]:
+    """A new, empty temporary directory beside ``destination``, and a descriptor holding a lock.
+
+    Same name scheme and lock as :func:`_create_temp`, so :func:`remove_stale_temp` knows it.
+    """
+    while True:
+        temp = destination.with_name(temp_prefix(destination) + secrets.token_hex(4))
+        try:
+            temp.mkdir()
+        except FileExistsError:
+            continue
+        except OSError as exc:
+            raise _output_error(destination, exc) from exc
+        try:
+            fd = os.open(temp, os.O_RDONLY | os.O_DIRECTORY)
+            if _lock_if_still_there(fd, temp):
+                return temp, fd
+        except BaseException:
+            shutil.rmtree(temp, ignore_errors=True)
+            raise
+        os.close(fd)  # a clean-up took it between creation and lock: make another
+
+
+def _remove_path(path: Path) -> None:
+    with contextlib.suppress(FileNotFoundError):
+        if path.is_dir() and not path.is_symlink():
+            shutil.rmtree(path)
+        else:
+            path.unlink()
+
+
+class StagedOutputs:
+    """Several outputs written under temporary names and put in place together, or none.
+
+    Each staged file or directory is created beside its final path under the hidden name
+    ``temp_prefix(final) + 8 hex digits`` and locked while this transaction lives, so a sweep of
+    stale temporary files (:func:`remove_stale_temp`) leaves it alone until a crash frees it.
+    :meth:`commit` renames every staged path into place; :meth:`rollback` removes them and the
+    folders this transaction made. As a context manager it commits when the ``with`` block
+    ends normally and rolls back when it ends by an exception (Ctrl-C included).
+
+    A staged directory (:meth:`stage_dir`) replaces an existing directory of the same name
+    whole, and only on commit: until then the old one stays untouched.
+
+    >>> with StagedOutputs() as stage:                      # doctest: +SKIP
+    ...     stage.write_text(out / "report.md", text)
+    ...     sf.write(stage.file(out / "a.wav"), x, fs)
+    ...     build_into(stage.stage_dir(dest / "liftmag.lv2"))
+    """
+
+    def __init__(self) -> None:
+        self._made_dirs: list[Path] = []
+        self._staged: list[tuple[Path, Path]] = []  # (temporary, final), in staging order
+        self._locks: list[int | None] = []
+
+    def __enter__(self) -> StagedOutputs:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        if exc_type is None:
+            self.commit()
+        else:
+            self.rollback()
+
+    def ensure_dir(self, path: PathLike) -> Path:
+        """Create ``path`` and its missing parents; those made here go again on rollback."""
+        path = Path(path)
+        missing = []
+        p = path
+        while not p.exists():
+            missing.append(p)
+            p = p.parent
+        for d in reversed(missing):
+            try:
+                d.mkdir()
+            except OSError as exc:
+                raise _output_error(d, exc) from exc
+            self._made_dirs.append(d)
+        return path
+
+    def file(self, final: PathLike) -> Path:
+        """A new, empty temporary file that becomes ``final`` on commit; write into it."""
+        final = Path(final)
+        self.ensure_dir(final.parent)
+        temp, fd = _create_temp(final)
+        self._staged.append((temp, final))
+        self._locks.append(fd)
+        return temp
+
+    def write_bytes(self, final: PathLike, data: bytes) -> Path:
+        """Stage ``data`` as the content of ``final``; returns the temporary path."""
+        temp = self.file(final)
+        try:
+            temp.write_bytes(data)
+        except OSError as exc:
+            raise _output_error(Path(final), exc) from exc
+        return temp
+
+    def write_text(self, final: PathLike, text: str) -> Path:
+        """Stage ``text`` (UTF-8) as the content of ``final``; returns the temporary path."""
+        return self.write_bytes(final, text.encode("utf-8"))
+
+    def stage_dir(self, final: PathLike) -> Path:
+        """A new, empty temporary directory that becomes ``final`` on commit; fill it.
+
+        An existing directory at ``final`` is replaced whole on commit (never merged).
+        """
+        final = Path(final)
+        self.ensure_dir(final.parent)
+        temp, fd = _create_temp_dir(final)
+        self._staged.append((temp, final))
+        self._locks.append(fd)
+        return temp
+
+    def commit(self) -> None:
+        """Rename every staged path into place, in the order staged; then release the locks.
+
+        Renames within one file system do not fail for want of space, so once the checks pass
+        every path goes in; a refused destination (a device, a file where a directory is
+        staged) stops the commit before anything moves, and everything staged is removed.
+        """
+        try:
+            # Every refusal before the first rename, so a refused commit puts nothing in place.
+            for temp, final in self._staged:
+                if not temp.is_dir():
+                    _refuse_special(final)
+                elif (final.exists() or final.is_symlink()) and not (
+                    final.is_dir() and not final.is_symlink()
+                ):
+                    raise AudioOutputError(
+                        f"{final} exists and is not a directory; nothing was written"
+                    )
+            for temp, final in self._staged:
+                if temp.is_dir() and final.is_dir():
+                    self._swap_dir(temp, final)
+                else:
+                    os.replace(temp, final)
+        except OSError as exc:
+            self.rollback()
+            raise _output_error(final, exc) from exc
+        except BaseException:
+            self.rollback()
+            raise
+        self._staged.clear()
+        self._made_dirs.clear()
+        self._release_locks()
+
+    def rollback(self) -> None:
+        """Remove what is still staged and the folders made here; nothing is put in place."""
+        for temp, _ in self._staged:
+            with contextlib.suppress(OSError):
+                _remove_path(temp)
+        for d in reversed(self._made_dirs):
+            with contextlib.suppress(OSError):
+                d.rmdir()  # only if empty: something committed or someone else's file stays
+        self._staged.clear()
+        self._made_dirs.clear()
+        self._release_locks()
+
+    def _swap_dir(self, temp: Path, final: Path) -> None:
+        # rename(2) cannot replace a non-empty directory: move the old one aside under a
+        # locked temporary name (swept if we die here), put the new one in, then delete.
+        aside, fd = _create_temp_dir(final)
+        try:
+            os.replace(final, aside / final.name)
+            try:
+                os.replace(temp, final)
+            except BaseException:
+                os.replace(aside / final.name, final)
+                raise
+        finally:
+            shutil.rmtree(aside, ignore_errors=True)
+            _release(fd)
+
+    def _release_locks(self) -> None:
+        for fd in self._locks:
+            _release(fd)
+        self._locks.clear()

@@ -7,6 +7,9 @@ import importlib
 import sys
 from collections.abc import Sequence
 
+# UserError stays importable from here for code written before liftmag.errors existed.
+from liftmag.errors import LiftmagError, UserError  # noqa: F401
+
 # Verb name -> module. Modules are imported lazily so `liftmag --help` stays fast
 # and a broken optional part (plots, cluster) cannot stop the other verbs.
 VERBS: dict[str, str] = {
@@ -32,10 +35,6 @@ VERB_SUMMARIES: dict[str, str] = {
     "demo": "render the built-in scene, clean it, and write a report",
     "plugin": "install or inspect the LV2 plugin bundle",
 }
-
-
-class UserError(Exception):
-    """A problem with the user's request or input: printed as one line, exit status 2."""
 
 
 def _build_parser(verb: str | None) -> argparse.ArgumentParser:
@@ -71,8 +70,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     module = importlib.import_module(VERBS[args.verb])
     try:
         return int(module.run(args) or 0)
-    except UserError as exc:
-        print(f"liftmag {args.verb}: error: {exc}", file=sys.stderr)
+    except LiftmagError as exc:
+        # One line, whatever the message holds: the user reads it, a script tests the status.
+        message = " ".join(str(exc).split())
+        print(f"liftmag {args.verb}: error: {message}", file=sys.stderr)
         return 2
     except BrokenPipeError:
         # Output piped into `head` or similar: the reader left; that is not an error.
@@ -84,4 +85,8 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    # `python -m liftmag.cli` runs this file as __main__ while the verbs import liftmag.cli:
+    # call the one imported copy so there is one module and one set of classes.
+    from liftmag.cli import main as _main
+
+    raise SystemExit(_main())

@@ -52,6 +52,7 @@ from numpy.typing import NDArray
 from scipy.signal import lfilter
 
 from liftmag.estimators import (
+    diagonally_loaded,
     lifted_affine_weights,
     lifted_nulls_weights,
     lifted_wiener_weights,
@@ -765,8 +766,7 @@ class Processor:
                 c_white = whitened_lift_covariance(cov, lift2, inv)
                 c_reg = shrunk_lift_covariance(c_white, n_eff)
                 n_spikes = np.zeros(len(n_eff), dtype=int)
-                scale = np.trace(c_reg, axis1=-2, axis2=-1) / d
-                c_reg = c_reg + (s.diagonal_loading * scale)[:, None, None] * np.eye(d)
+                c_reg = diagonally_loaded(c_reg, s.diagonal_loading)
                 # Any S with S C S^T = I serves the minimum-variance structure: C^-1/2 by
                 # Cholesky here, by the eigen-factors below.
                 inv_sqrt = np.linalg.inv(np.linalg.cholesky(c_reg))

@@ -38,8 +38,13 @@ from liftmag.lift import lift_snapshots, rho
 # ----------------------------------------------------------------------------- helpers
 
 
-def _loaded(c: NDArray, loading: float) -> NDArray:
-    """``C + loading * mean-eigenvalue * I``: diagonal loading relative to the matrix scale."""
+def diagonally_loaded(c: NDArray, loading: float) -> NDArray:
+    """``C + loading * mean-eigenvalue * I``: diagonal loading relative to the matrix scale.
+
+    The mean eigenvalue is ``trace(C) / dim``; a stack of matrices (``(..., dim, dim)``) is
+    loaded matrix by matrix. ``loading = 0`` returns ``c`` itself. Diagonal loading as in
+    Carlson (1988), IEEE Trans. Aerosp. Electron. Syst. 24(4), scaled to each matrix.
+    """
     if loading < 0:
         raise ValueError(f"diagonal loading must be >= 0, got {loading}")
     if loading == 0:
@@ -95,14 +100,14 @@ def mvdr_weights(g: ArrayLike, phi_v: ArrayLike, loading: float = 0.0) -> NDArra
     noise power is ``1 / (g^H Phi_v^-1 g)`` (:func:`mvdr_residual_power`).
     """
     g = check_finite("g", g)
-    a = _solve(_loaded(check_finite("phi_v", phi_v), loading), g)
+    a = _solve(diagonally_loaded(check_finite("phi_v", phi_v), loading), g)
     return a / _hdot(g, a)[..., None]
 
 
 def mvdr_residual_power(g: ArrayLike, phi_v: ArrayLike, loading: float = 0.0) -> NDArray:
     """Noise power at the MVDR output, ``1 / (g^H Phi_v^-1 g)``."""
     g = check_finite("g", g)
-    a = _solve(_loaded(check_finite("phi_v", phi_v), loading), g)
+    a = _solve(diagonally_loaded(check_finite("phi_v", phi_v), loading), g)
     return 1.0 / np.real(_hdot(g, a))
 
 
@@ -114,7 +119,7 @@ def linear_wiener_weights(
     ``lambda_x = E|S|^2``; with a deterministic magnitude ``A`` use ``lambda_x = A^2``.
     """
     g = check_finite("g", g)
-    a = _solve(_loaded(check_finite("phi_y", phi_y), loading), g)
+    a = _solve(diagonally_loaded(check_finite("phi_y", phi_y), loading), g)
     return check_finite("speech_power", speech_power)[..., None] * a
 
 
@@ -206,7 +211,7 @@ def quadratic_wiener_fixed_weights(
     second_moment = mean[..., :, None] * mean[..., None, :]
     r = check_finite("c_v", c_v) + a2[..., None, None] * check_finite("k_cross", k_cross)
     r = r + second_moment
-    return a2[..., None] * _solve(_loaded(r, loading), mean)
+    return a2[..., None] * _solve(diagonally_loaded(r, loading), mean)
 
 
 def lifted_mv_weights(
@@ -232,7 +237,7 @@ def lifted_mv_weights(
     rho_g = check_finite("rho_g", rho_g)
     p = np.asarray(check_finite("speech_power_prior", speech_power_prior), dtype=float)
     c = check_finite("c_v", c_v) + p[..., None, None] * check_finite("k_cross", k_cross)
-    a = _solve(_loaded(c, loading), rho_g)
+    a = _solve(diagonally_loaded(c, loading), rho_g)
     denom = _dot(rho_g, a)
     return a / denom[..., None], 1.0 / denom
 
@@ -272,7 +277,7 @@ def lifted_wiener_weights(
         + check_finite("c_v", c_v)
         + mu_v[..., :, None] * mu_v[..., None, :]
     )
-    return _solve(_loaded(r, loading), p2 * rho_g + lam * mu_v)
+    return _solve(diagonally_loaded(r, loading), p2 * rho_g + lam * mu_v)
 
 
 def lifted_affine_weights(
@@ -292,7 +297,7 @@ def lifted_affine_weights(
     """
     rho_g = check_finite("rho_g", rho_g)
     var_p = np.asarray(check_finite("speech_power_variance", speech_power_variance), dtype=float)
-    a = _solve(_loaded(check_finite("c_noise", c_noise), loading), rho_g)
+    a = _solve(diagonally_loaded(check_finite("c_noise", c_noise), loading), rho_g)
     q = _dot(rho_g, a)
     gain = var_p / (1.0 + var_p * q)
     return gain[..., None] * a

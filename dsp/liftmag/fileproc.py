@@ -25,6 +25,7 @@ from liftmag.engine import (
     uses_take_analysis,
 )
 from liftmag.noise import NoiseModel
+from liftmag.regions import check_region
 from liftmag.settings import Settings
 
 BLOCK_FRAMES = 1 << 16
@@ -132,10 +133,10 @@ def learn_noise(
     else:
         regions = []
         for start_s, end_s in regions_s:
-            if not (0 <= start_s < end_s):
-                raise audio_io.AudioInputError(
-                    f"noise region {start_s:g}:{end_s:g} s is not a forward range of times"
-                )
+            try:
+                check_region(start_s, end_s)
+            except ValueError as exc:
+                raise audio_io.AudioInputError(f"noise region {exc}") from None
             if end_s > source.duration_s + 1e-9:
                 raise audio_io.AudioInputError(
                     f"noise region {start_s:g}:{end_s:g} s ends after the file "

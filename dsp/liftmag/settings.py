@@ -62,8 +62,14 @@ def _meta(
     lv2_port: bool = False,
     lv2_label: str = "",
     lv2_zero: str = "",
+    option: str = "",
+    old_options: tuple[str, ...] = (),
 ) -> dict[str, Any]:
     return {
+        # The command-line spelling (without "--") where it differs from the field name, and
+        # earlier spellings still accepted, hidden from --help, for one release.
+        "option": option,
+        "old_options": old_options,
         "help": help_text,
         "unit": unit,
         "minimum": minimum,
@@ -161,11 +167,15 @@ class Settings:
             "0 = causal", unit="s", minimum=0.0, maximum=10.0,
         ),
     )
+    # On the command line --prior-smoothing (--smoothing, its first name, read as if it smoothed
+    # the output; still accepted, hidden, for one release). The field keeps its name: batch
+    # manifests, resume records and saved settings use it, and it has no LV2 port.
     smoothing: float = field(
         default=0.98,
         metadata=_meta(
             "weight of the previous frame in the decision-directed speech prior (against "
             "musical noise)", minimum=0.0, maximum=0.999,
+            option="prior-smoothing", old_options=("smoothing",),
         ),
     )
     spike_threshold: float = field(
@@ -234,3 +244,16 @@ class Settings:
 def settings_fields() -> tuple[dataclasses.Field, ...]:
     """The fields of :class:`Settings`, with their metadata, in declaration order."""
     return dataclasses.fields(Settings)
+
+
+def noise_mode_given_learned(noise_mode: str | None, learned: bool) -> str | None:
+    """The noise mode to run with: a learned model or region is held unless one is chosen.
+
+    Room tone the user pointed at is better than what the tracker finds on its own, so with a
+    learned model (``--noise-model``, ``--room-tone``, ``--noise-region``) the noise is held as
+    learned; an explicit ``noise_mode`` (``track`` to keep following the take) wins. Without a
+    learned model the choice is left to :class:`Settings`' default (None here).
+    """
+    if learned and noise_mode is None:
+        return "hold"
+    return noise_mode

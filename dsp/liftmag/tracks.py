@@ -23,6 +23,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from liftmag import audio_io, riffchunks
+from liftmag.errors import LiftmagError
 from liftmag.riffchunks import IxmlTrack
 
 if TYPE_CHECKING:
@@ -55,7 +56,7 @@ FILE_OUTPUT_MODE_HELP: dict[str, str] = {
 TAKEN_OUT_SUFFIX = " taken out"
 
 
-class TrackChoiceError(ValueError):
+class TrackChoiceError(LiftmagError, ValueError):
     """A ``--mics`` request that does not fit the take: one line that says why."""
 
 

@@ -28,6 +28,7 @@ import time
 from pathlib import Path
 from typing import Any
 
+from liftmag.audio_io import StagedOutputs
 from liftmag_lv2 import build_shim, ttl
 
 HERE = Path(__file__).resolve().parent  # the liftmag_lv2 package folder
@@ -118,8 +119,9 @@ def build_bundle(out: Path | None = None, venv_python: str | None = None,
     out.parent.mkdir(parents=True, exist_ok=True)
     work_parent = _work_parent(out)
     work_parent.mkdir(parents=True, exist_ok=True)
-    stage = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-    try:
+    # Staged under the temporary names the batch sweeper knows; replaced whole on commit.
+    with StagedOutputs() as staging:
+        stage = staging.stage_dir(out)
         ports = ttl.control_ports()
         started = time.perf_counter()
         with tempfile.TemporaryDirectory(prefix=".liftmag-lv2-work.", dir=work_parent) as work:
@@ -148,16 +150,6 @@ def build_bundle(out: Path | None = None, venv_python: str | None = None,
         }
         (stage / BUILD_INFO).write_text(json.dumps(info, indent=1) + "\n")
         os.chmod(stage, 0o755)
-        old = None
-        if out.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old.", dir=out.parent))
-            out.replace(old / out.name)
-        stage.replace(out)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    finally:
-        if stage.exists():
-            shutil.rmtree(stage, ignore_errors=True)
     return out
 
 

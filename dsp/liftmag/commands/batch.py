@@ -85,7 +85,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from liftmag import batch
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
     from liftmag.settings import settings_fields
     from liftmag.tracks import parse_mics
 

@@ -18,8 +18,9 @@ CLI_HIDDEN_FIELDS = ("bypass",)  # a host control; on the command line, use pass
 
 
 def option_name(field_name: str) -> str:
-    """``reduction_limit_db`` -> ``--reduction-limit-db``."""
-    return "--" + field_name.replace("_", "-")
+    """``reduction_limit_db`` -> ``--reduction-limit-db``, or the field's own ``option``."""
+    meta = {f.name: f.metadata for f in settings_fields()}.get(field_name, {})
+    return "--" + (meta.get("option") or field_name.replace("_", "-"))
 
 
 def _describe(f: dataclasses.Field) -> str:
@@ -52,7 +53,12 @@ def add_settings_arguments(parser: argparse.ArgumentParser) -> None:
             kwargs["type"] = int
         else:
             kwargs["type"] = float
+        if meta.get("option") and "metavar" not in kwargs:
+            kwargs["metavar"] = meta["option"].upper().replace("-", "_")
         group.add_argument(option_name(f.name), **kwargs)
+        for old in meta.get("old_options", ()):
+            # The earlier spelling, same destination, hidden from --help (kept one release).
+            group.add_argument(f"--{old}", **{**kwargs, "help": argparse.SUPPRESS})
 
 
 def _float_list(text: str) -> tuple[float, ...]:
@@ -64,7 +70,7 @@ def _float_list(text: str) -> tuple[float, ...]:
 
 def settings_from_args(args: argparse.Namespace, **overrides: Any) -> Settings:
     """Build validated ``Settings`` from parsed options (unset options keep their defaults)."""
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
 
     values = {
         f.name: getattr(args, f.name)
@@ -79,14 +85,13 @@ def settings_from_args(args: argparse.Namespace, **overrides: Any) -> Settings:
 
 
 def parse_region(text: str) -> tuple[float, float]:
-    """``"START:END"`` in seconds -> (start, end)."""
+    """argparse type for ``START:END`` in seconds: :func:`liftmag.regions.parse_region`."""
+    from liftmag.regions import parse_region as parse
+
     try:
-        start, end = (float(part) for part in text.split(":"))
+        return parse(text)
     except ValueError as exc:
-        raise argparse.ArgumentTypeError(
-            f"a region is START:END in seconds, e.g. 0.5:4.0; got {text!r}"
-        ) from exc
-    return start, end
+        raise argparse.ArgumentTypeError(str(exc)) from None
 
 
 def progress_bar(label: str, total: int, unit_scale: float) -> Callable[[int, int], None] | None:

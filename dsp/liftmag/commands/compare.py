@@ -1,34 +1,27 @@
 """``liftmag compare``: A/B liftmag's output against other versions of a take.
 
-Thin edge over :mod:`liftmag.abcompare` (alignment, loudness, scores) and
-:mod:`liftmag.report` (figures and pages); inputs are read with
-:mod:`liftmag.audio_io`. Everything is computed in memory first; then every
-output is written to a temporary name in its destination folder and only when
-all of them are complete are they renamed into place, so an error leaves
-nothing behind (``AtomicAudioWriter`` commits file by file, which is why the
-staging here is our own).
+Thin edge: parses the options, reads the inputs with :mod:`liftmag.audio_io`, calls
+:mod:`liftmag.abcompare` (alignment, loudness, scores, blind labels and key) and
+:mod:`liftmag.compare_report` (tables, text, figures, and the output folder, written all
+together or not at all), and prints.
 """
 
 from __future__ import annotations
 
 import argparse
-import contextlib
-import hashlib
+import dataclasses
 import json
-import math
 import os
 import re
 import sys
-import tempfile
-import time
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from liftmag.cli import UserError
 from liftmag.commands.common import stoppable
+from liftmag.errors import UserError
 
 HELP = """\
 Compare liftmag's output with other processed versions of the same take.
@@ -40,36 +33,8 @@ reference is given. Writes an HTML report (self-contained), Markdown, JSON,
 and shuffled, neutrally named files for blind listening with a separate key.
 """
 
-LISTENING_CAUTION = (
-    "Listening level: start with the monitor turned low and raise it slowly. The files "
-    "are matched in loudness, but any of them can still hold loud transients (clicks, "
-    "bumps, plosives); never listen at a level that is uncomfortable."
-)
-ORIGINALS_CAUTION = (
-    "Enhanced audio is not the original recording. Keep the unprocessed files; "
-    "forensic or evidential use needs the original, unprocessed file."
-)
-
-REPORT_HTML = "report.html"
-REPORT_MD = "report.md"
-SCORES_JSON = "scores.json"
-KEY_JSON = "blind-key.json"
-BLIND_DIR = "blind"
-FIGURES_DIR = "figures"
-KEY_FORMAT = "liftmag-blind-key"
-KEY_FORMAT_VERSION = 1
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,39}$")
 _RESERVED = {"original", "liftmag", "clean"}
-_TAKE_RE = re.compile(r"^take-[0-9]+\.wav$")
-
-
-def _current_umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
-
-
-_UMASK = _current_umask()
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -78,12 +43,16 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument("--liftmag", metavar="FILE", help="liftmag's output for this take")
     parser.add_argument(
-        "--version",
+        "--other",
         dest="versions",
         action="append",
         default=[],
         metavar="NAME=FILE",
         help="another processed version (repeatable); NAME: letters, digits, _ . -",
+    )
+    # The first spelling, kept hidden for one release: it read like the program's --version.
+    parser.add_argument(
+        "--version", dest="versions", action="append", default=[], help=argparse.SUPPRESS
     )
     parser.add_argument(
         "--clean",
@@ -184,118 +153,30 @@ def _parse_versions(items: list[str]) -> list[tuple[str, str]]:
     for item in items:
         name, sep, file = item.partition("=")
         if not sep or not file:
-            raise UserError(f"--version expects NAME=FILE, got {item!r}")
+            raise UserError(f"--other expects NAME=FILE, got {item!r}")
         if not _NAME_RE.match(name):
             raise UserError(
-                f"--version name {name!r}: use 1 to 40 letters, digits, '_', '.' or '-', "
+                f"--other name {name!r}: use 1 to 40 letters, digits, '_', '.' or '-', "
                 "starting with a letter or digit"
             )
         if name.lower() in _RESERVED:
-            raise UserError(f"--version name {name!r} is reserved; choose another")
+            raise UserError(f"--other name {name!r} is reserved; choose another")
         if any(name == n for n, _ in out):
-            raise UserError(f"--version name {name!r} is given twice")
+            raise UserError(f"--other name {name!r} is given twice")
         out.append((name, file))
     return out
 
 
 def _parse_regions(items: list[str]) -> list[tuple[float, float]]:
+    from liftmag.regions import parse_region
+
     regions = []
     for item in items:
-        start, sep, end = item.partition(":")
         try:
-            a, b = float(start), float(end)
-        except ValueError:
-            raise UserError(f"--noise-region expects START:END in seconds, got {item!r}") from None
-        if not sep or not (math.isfinite(a) and math.isfinite(b)) or a < 0 or b <= a:
-            raise UserError(f"--noise-region {item!r}: need 0 <= START < END (seconds)")
-        regions.append((a, b))
+            regions.append(parse_region(item))
+        except ValueError as exc:
+            raise UserError(f"--noise-region: {exc}") from None
     return regions
-
-
-# --------------------------------------------------------------------------- writing
-
-
-@dataclass
-class _Staging:
-    """Files staged under temporary names, renamed into place by :meth:`commit`."""
-
-    made_dirs: list[Path] = field(default_factory=list)
-    staged: list[tuple[Path, Path]] = field(default_factory=list)  # (temp, final)
-
-    def ensure_dir(self, path: Path) -> None:
-        missing = []
-        p = path
-        while not p.exists():
-            missing.append(p)
-            p = p.parent
-        for d in reversed(missing):
-            d.mkdir()
-            self.made_dirs.append(d)
-
-    def _temp(self, final: Path) -> Path:
-        self.ensure_dir(final.parent)
-        fd, name = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part", dir=final.parent)
-        os.close(fd)
-        temp = Path(name)
-        # mkstemp makes the file private (0600); give it the usual permissions.
-        os.chmod(temp, 0o666 & ~_UMASK)
-        self.staged.append((temp, final))
-        return temp
-
-    def bytes(self, final: Path, data: bytes) -> None:
-        self._temp(final).write_bytes(data)
-
-    def text(self, final: Path, text: str) -> None:
-        self.bytes(final, text.encode("utf-8"))
-
-    def wav(self, final: Path, x: np.ndarray, fs_hz: int) -> Path:
-        import soundfile as sf
-
-        # 24-bit PCM: no float PEAK chunk (it carries a time stamp), and the
-        # quantisation error (about -144 dBFS) is far below anything audible.
-        temp = self._temp(final)
-        sf.write(str(temp), x, fs_hz, format="WAV", subtype="PCM_24")
-        return temp
-
-    def commit(self) -> None:
-        for temp, final in self.staged:
-            os.replace(temp, final)
-        self.staged.clear()
-
-    def rollback(self) -> None:
-        for temp, _ in self.staged:
-            with contextlib.suppress(OSError):
-                temp.unlink()
-        for d in reversed(self.made_dirs):
-            with contextlib.suppress(OSError):
-                d.rmdir()
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with path.open("rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
-
-
-# --------------------------------------------------------------------------- formatting
-
-
-def _num(value: float | None, digits: int = 1, signed: bool = False) -> str:
-    if value is None:
-        return "-"
-    if math.isnan(value):
-        return "n/a"
-    if math.isinf(value):
-        return "-inf" if value < 0 else "+inf"
-    return f"{value:+.{digits}f}" if signed else f"{value:.{digits}f}"
-
-
-def _json_number(value: float | None) -> float | None:
-    if value is None or not math.isfinite(value):
-        return None
-    return round(float(value), 4)
 
 
 def _progress(items: Iterable, desc: str) -> Iterable:
@@ -305,265 +186,7 @@ def _progress(items: Iterable, desc: str) -> Iterable:
     return tqdm(items, desc=desc, file=sys.stderr, delay=2.0, leave=False, unit="step")
 
 
-SCORE_EXPLANATIONS = (
-    "Noise-floor change: level of the version minus level of the original in the noise-only "
-    "region, in dB. Negative means less noise. 'At matched loudness' adds the gain used for "
-    "listening, i.e. how much quieter the noise is when the speech plays equally loud.",
-    "Speech level change: the same measurement over the speech-active part, in dB. Removing "
-    "noise lowers it a little; a drop of several dB suggests speech itself was attenuated "
-    "(an overall gain change of the version shows up here too).",
-    "WADA SNR: a blind estimate of speech-to-noise ratio from the shape of the waveform's "
-    "amplitude distribution (Kim & Stern 2008), in dB. Needs no clean reference; it assumes "
-    "steady, roughly Gaussian noise and can be several dB off on processed audio.",
-    "Kurtosis ratio: how peaky the remaining noise's spectrum is over time, after processing "
-    "relative to before (Uemura et al. 2009). Near 1: the noise kept its character. Well above "
-    "1: isolated tonal blips ('musical noise') are likely audible. It needs a truly "
-    "noise-only region: any trace of speech there (onsets, tails) inflates it strongly, so "
-    "give --noise-region over room tone when in doubt.",
-    "With a clean reference: SI-SDR (scale-invariant signal-to-distortion ratio, dB, higher is "
-    "better), STOI and ESTOI (predicted intelligibility, 0 to 1, higher is better) and PESQ-WB "
-    "(ITU-T P.862.2 predicted quality, about 1 to 4.6, higher is better).",
-    "Scores are pointers, not verdicts: listen, blind, before choosing.",
-)
-
-
-def _rows(comparison, with_clean: bool) -> tuple[tuple[str, ...], list[tuple[str, ...]]]:
-    cols = [
-        "version",
-        "noise floor change (dB)",
-        "at matched loudness (dB)",
-        "speech level change (dB)",
-        "WADA SNR (dB)",
-        "kurtosis ratio",
-    ]
-    if with_clean:
-        cols += ["SI-SDR (dB)", "STOI", "ESTOI", "PESQ-WB"]
-    rows = []
-    for name in comparison.names:
-        s = comparison.scores[name]
-        row = [
-            name,
-            _num(s.noise_floor_change_db, signed=True),
-            _num(s.noise_floor_change_matched_db, signed=True),
-            _num(s.speech_level_change_db, signed=True),
-            _num(s.wada_snr_db),
-            _num(s.kurtosis_ratio, 2),
-        ]
-        if with_clean:
-            row += [_num(s.si_sdr_db), _num(s.stoi, 3), _num(s.estoi, 3), _num(s.pesq_wb, 2)]
-        rows.append(tuple(row))
-    return tuple(cols), rows
-
-
-def _alignment_rows(comparison) -> list[tuple[str, ...]]:
-    rows = []
-    loud = comparison.loudness
-    for name in comparison.names:
-        a = comparison.alignments.get(name)
-        rows.append(
-            (
-                name,
-                "0" if a is None else str(a.delay_samples),
-                "0.00" if a is None else f"{a.delay_ms:.2f}",
-                "1.00" if a is None else f"{a.peak_correlation:.2f}",
-                _num(loud.loudness_lufs[name]),
-                _num(loud.gain_db[name], 2, signed=True),
-                _num(loud.peak_dbfs_after[name], signed=True),
-            )
-        )
-    return rows
-
-
-def _summary(comparison, inputs: dict[str, _Input], args, outputs: dict[str, str]) -> dict:
-    fs = comparison.fs_hz
-    regions = comparison.regions
-    loud = comparison.loudness
-    versions = []
-    for name in comparison.names:
-        a = comparison.alignments.get(name)
-        s = comparison.scores[name]
-        versions.append(
-            {
-                "name": name,
-                "file": str(inputs[name].path),
-                "delay_samples": 0 if a is None else a.delay_samples,
-                "delay_ms": 0.0 if a is None else round(a.delay_ms, 3),
-                "polarity": 1 if a is None else a.polarity,
-                "peak_correlation": 1.0 if a is None else _json_number(a.peak_correlation),
-                "loudness_lufs": _json_number(loud.loudness_lufs[name]),
-                "gain_db": _json_number(loud.gain_db[name]),
-                "peak_dbfs_after_gain": _json_number(loud.peak_dbfs_after[name]),
-                "scores": {
-                    "noise_floor_change_db": _json_number(s.noise_floor_change_db),
-                    "noise_floor_change_matched_db": _json_number(s.noise_floor_change_matched_db),
-                    "speech_level_change_db": _json_number(s.speech_level_change_db),
-                    "wada_snr_db": _json_number(s.wada_snr_db),
-                    "kurtosis_ratio": _json_number(s.kurtosis_ratio),
-                    "si_sdr_db": _json_number(s.si_sdr_db),
-                    "stoi": _json_number(s.stoi),
-                    "estoi": _json_number(s.estoi),
-                    "pesq_wb": _json_number(s.pesq_wb),
-                },
-            }
-        )
-    clean = None
-    if comparison.clean_alignment is not None:
-        ca = comparison.clean_alignment
-        clean = {
-            "file": str(inputs["clean"].path),
-            "delay_samples": ca.delay_samples,
-            "delay_ms": round(ca.delay_ms, 3),
-        }
-    return {
-        "format": "liftmag-compare",
-        "format_version": 1,
-        "sample_rate_hz": int(fs),
-        "channel": args.channel,
-        "duration_s": round(comparison.aligned["original"].size / fs, 3),
-        "noise_region": {
-            "found_automatically": regions.noise_found_automatically,
-            "intervals_s": [[round(a, 3), round(b, 3)] for a, b in regions.noise_intervals_s(fs)],
-            "total_s": round(regions.noise.sum() / fs, 3),
-        },
-        "speech_active_s": round(regions.speech.sum() / fs, 3),
-        "common_reduction_db": _json_number(comparison.loudness.common_reduction_db),
-        "clean": clean,
-        "versions": versions,
-        "notes": list(comparison.notes),
-        "outputs": outputs,
-        "cautions": [LISTENING_CAUTION, ORIGINALS_CAUTION],
-    }
-
-
-def _build_sections(comparison, inputs, figures, with_clean: bool):
-    from liftmag.report import Image, Section, Table
-
-    fs = comparison.fs_hz
-    regions = comparison.regions
-    cols, rows = _rows(comparison, with_clean)
-    intro = (
-        f"Original take: {inputs['original'].path.name} ({fs:g} Hz, "
-        f"{comparison.aligned['original'].size / fs:.2f} s). Compared: "
-        + ", ".join(n for n in comparison.names if n != "original")
-        + ". Each version was aligned to the original, and all scores refer to the "
-        "original's noise-only and speech-active parts."
-    )
-    noise_how = (
-        "found automatically from the quietest frames"
-        if regions.noise_found_automatically
-        else "as given with --noise-region"
-    )
-    sections = [
-        Section(
-            "Summary",
-            (
-                intro,
-                "! " + ORIGINALS_CAUTION,
-                "! " + LISTENING_CAUTION,
-            ),
-        ),
-        Section(
-            "Scores",
-            (
-                Table(
-                    cols,
-                    tuple(rows),
-                    caption=f"Noise-only region: {regions.noise.sum() / fs:.2f} s, {noise_how}; "
-                    f"speech-active part: {regions.speech.sum() / fs:.2f} s.",
-                ),
-                *SCORE_EXPLANATIONS,
-            ),
-        ),
-        Section(
-            "Alignment and loudness",
-            (
-                Table(
-                    (
-                        "version",
-                        "delay (samples)",
-                        "delay (ms)",
-                        "correlation",
-                        "speech loudness (LUFS)",
-                        "listening gain (dB)",
-                        "peak after gain (dBFS)",
-                    ),
-                    tuple(_alignment_rows(comparison)),
-                    caption="Delay: how late each version is relative to the original "
-                    "(cross-correlation, to the sample). Loudness: ITU-R BS.1770 integrated "
-                    "loudness of the speech-active part. The listening gain brings each "
-                    "version to the original's loudness.",
-                ),
-                *(
-                    [
-                        f"All listening gains include a common reduction of "
-                        f"{-comparison.loudness.common_reduction_db:.1f} dB so that no file clips."
-                    ]
-                    if comparison.loudness.common_reduction_db < 0
-                    else []
-                ),
-            ),
-        ),
-        Section(
-            "Level over time",
-            (
-                Image(
-                    figures["level-over-time"],
-                    "level-over-time",
-                    alt="Level over time of the original and each version",
-                    caption="Short-term level of the original and of each aligned version as "
-                    "delivered (before loudness matching). Grey: the noise-only region.",
-                ),
-            ),
-        ),
-        Section(
-            "Spectrograms",
-            tuple(
-                Image(
-                    figures[f"spectrogram-{name}"],
-                    f"spectrogram-{name}",
-                    alt=f"Spectrograms of the original, {name}, and what {name} removed",
-                    caption=f"Left: original. Middle: {name}, aligned, as delivered. Right: "
-                    f"what {name} removed (original minus aligned {name}); all on one colour "
-                    "scale. Speech in the right panel means speech was removed or changed in "
-                    "level.",
-                )
-                for name in comparison.names
-                if name != "original"
-            ),
-        ),
-        Section(
-            "Blind listening",
-            (
-                f"The folder {BLIND_DIR}/ holds every version, the original included, matched "
-                "in loudness and under neutral shuffled names (take-1.wav, ...). All have the "
-                f"same length, format and time stamp. The key is in {KEY_JSON}: do not open it "
-                "before listening; 'liftmag compare --reveal "
-                f"{KEY_JSON}' prints which file is which.",
-                "! " + LISTENING_CAUTION,
-            ),
-        ),
-    ]
-    if comparison.notes:
-        sections.append(Section("Notes", tuple(comparison.notes)))
-    return sections
-
-
 # --------------------------------------------------------------------------- run
-
-
-def _planned_outputs(out_dir: Path, n_takes: int, image_names: list[str]) -> list[Path]:
-    paths = [out_dir / REPORT_HTML, out_dir / REPORT_MD, out_dir / SCORES_JSON, out_dir / KEY_JSON]
-    paths += [out_dir / BLIND_DIR / f"take-{i + 1}.wav" for i in range(n_takes)]
-    paths += [out_dir / FIGURES_DIR / f"{name}.png" for name in image_names]
-    return paths
-
-
-def _stale_takes(out_dir: Path, planned: list[Path]) -> list[Path]:
-    blind = out_dir / BLIND_DIR
-    if not blind.is_dir():
-        return []
-    keep = {p.name for p in planned if p.parent == blind}
-    return sorted(p for p in blind.iterdir() if _TAKE_RE.match(p.name) and p.name not in keep)
 
 
 def _check_outputs(
@@ -571,13 +194,14 @@ def _check_outputs(
 ) -> list[Path]:
     if out_dir.exists() and not out_dir.is_dir():
         raise UserError(f"--out {out_dir} exists and is not a folder")
+    from liftmag import compare_report
     from liftmag.audio_io import AudioOutputError, refuse_destination
 
     resolved_inputs = {p.resolve() for p in inputs}
     for p in planned:
         if p.resolve() in resolved_inputs:
             raise UserError(f"output {p} would overwrite an input; choose another --out")
-    stale = _stale_takes(out_dir, planned)
+    stale = compare_report.stale_takes(out_dir, planned)
     for p in stale:
         if p.resolve() in resolved_inputs:
             # Replacing the blind set would delete it: an input is never deleted.
@@ -602,30 +226,27 @@ def _check_outputs(
 
 
 def _reveal(key_path_text: str, as_json: bool) -> int:
+    from liftmag import abcompare, audio_io
+
     key_path = Path(key_path_text)
     if not key_path.is_file():
         raise UserError(f"key not found: {key_path}")
     try:
-        key = json.loads(key_path.read_text(encoding="utf-8"))
-        if key.get("format") != KEY_FORMAT:
-            raise ValueError
-        takes = key["takes"]
-        blind_dir = key_path.parent / key["blind_folder"]
-    except (ValueError, KeyError, TypeError, UnicodeDecodeError):
+        folder, takes = abcompare.parse_blind_key(key_path.read_text(encoding="utf-8"))
+    except (ValueError, UnicodeDecodeError):
         raise UserError(f"{key_path} is not a liftmag blind key") from None
+    blind_dir = key_path.parent / folder
     result = []
-    for label in sorted(takes, key=lambda t: int(re.sub(r"\D", "", t) or 0)):
-        entry = takes[label]
-        path = blind_dir / label
+    for take in takes:
+        path = blind_dir / take.file
         if not path.is_file():
             status = "missing"
-        elif _sha256(path) != entry.get("sha256"):
+        elif audio_io.sha256_file(path) != take.sha256:
             status = "changed since the key was written"
         else:
             status = "ok"
-        result.append(
-            {"file": label, "name": entry["name"], "source": entry["source"], "status": status}
-        )
+        result.append({"file": take.file, "name": take.name, "source": take.source,
+                       "status": status})
     if as_json:
         print(json.dumps({"blind_folder": str(blind_dir), "takes": result}, indent=2))
     else:
@@ -638,6 +259,8 @@ def _reveal(key_path_text: str, as_json: bool) -> int:
 
 @stoppable("compare")
 def run(args: argparse.Namespace) -> int:
+    from liftmag import compare_report
+
     if args.reveal:
         return _reveal(args.reveal, args.json)
     if not args.original:
@@ -651,7 +274,7 @@ def run(args: argparse.Namespace) -> int:
     names = ["original", "liftmag", *(n for n, _ in versions)]
     out_dir = Path(args.out)
     image_names = ["level-over-time", *(f"spectrogram-{n}" for n in names[1:])]
-    planned = _planned_outputs(out_dir, len(names), image_names)
+    planned = compare_report.planned_outputs(out_dir, len(names), image_names)
     input_paths = [Path(args.original), Path(args.liftmag), *(Path(f) for _, f in versions)]
     if args.clean:
         input_paths.append(Path(args.clean))
@@ -688,124 +311,29 @@ def run(args: argparse.Namespace) -> int:
     except ValueError as exc:
         raise UserError(str(exc)) from None
     input_notes = [note for inp in inputs.values() for note in inp.notes]
-    comparison = _with_notes(comparison, input_notes)
+    comparison = dataclasses.replace(comparison, notes=(*input_notes, *comparison.notes))
 
-    figures = _figures(comparison)
+    pngs = compare_report.figures(comparison, _progress)
     labels = abcompare.blind_labels(names)
     outputs = {
-        "html": str(out_dir / REPORT_HTML),
-        "markdown": str(out_dir / REPORT_MD),
-        "json": str(out_dir / SCORES_JSON),
-        "blind_folder": str(out_dir / BLIND_DIR),
-        "blind_key": str(out_dir / KEY_JSON),
+        "html": str(out_dir / compare_report.REPORT_HTML),
+        "markdown": str(out_dir / compare_report.REPORT_MD),
+        "json": str(out_dir / compare_report.SCORES_JSON),
+        "blind_folder": str(out_dir / compare_report.BLIND_DIR),
+        "blind_key": str(out_dir / compare_report.KEY_JSON),
     }
-    summary = _summary(comparison, inputs, args, outputs)
-    _write_all(out_dir, comparison, inputs, figures, labels, summary, stale, bool(args.clean))
+    sources = {name: inp.path for name, inp in inputs.items()}
+    summary = compare_report.summary(comparison, sources, args.channel, outputs)
+    try:
+        compare_report.write_comparison(
+            out_dir, comparison, sources, pngs, labels, summary, stale, bool(args.clean)
+        )
+    except OSError as exc:
+        raise UserError(f"cannot write to {out_dir}: {exc.strerror or exc}") from None
 
     if args.json:
         print(json.dumps(summary, indent=2))
-        print(LISTENING_CAUTION, file=sys.stderr)
+        print(compare_report.LISTENING_CAUTION, file=sys.stderr)
     else:
-        _print_human(comparison, out_dir, bool(args.clean))
+        print("\n".join(compare_report.human_lines(comparison, out_dir, bool(args.clean))))
     return 0
-
-
-def _with_notes(comparison, extra: list[str]):
-    import dataclasses
-
-    return dataclasses.replace(comparison, notes=(*extra, *comparison.notes))
-
-
-def _figures(comparison) -> dict[str, bytes]:
-    from liftmag import report
-
-    fs = comparison.fs_hz
-    x = comparison.aligned["original"]
-    figures: dict[str, bytes] = {}
-    versions = [n for n in comparison.names if n != "original"]
-    for name in _progress(versions, "spectrograms"):
-        v = comparison.aligned[name]
-        figures[f"spectrogram-{name}"] = report.spectrogram_row_png(
-            [("original", x), (name, v), (f"removed by {name}", x - v)], fs
-        )
-    figures["level-over-time"] = report.level_over_time_png(
-        [(n, comparison.aligned[n]) for n in comparison.names],
-        fs,
-        shade_s=comparison.regions.noise_intervals_s(fs),
-    )
-    return figures
-
-
-def _write_all(out_dir, comparison, inputs, figures, labels, summary, stale, with_clean) -> None:
-    from liftmag import report
-
-    sections = _build_sections(comparison, inputs, figures, with_clean)
-    title = "liftmag compare: " + inputs["original"].path.name
-    fs = int(comparison.fs_hz)
-    staging = _Staging()
-    try:
-        staging.ensure_dir(out_dir)
-        # Written in label order, so creation order (and inode numbers) follow
-        # the neutral labels, not the versions behind them.
-        blind_paths = []
-        key = {
-            "format": KEY_FORMAT,
-            "format_version": KEY_FORMAT_VERSION,
-            "blind_folder": BLIND_DIR,
-            "takes": {},
-        }
-        for label in sorted(labels, key=lambda t: int(t.split("-")[1])):
-            name = labels[label]
-            path = out_dir / BLIND_DIR / f"{label}.wav"
-            temp = staging.wav(path, comparison.matched[name], fs)
-            blind_paths.append(path)
-            key["takes"][path.name] = {
-                "name": name,
-                "source": str(inputs[name].path.resolve()),
-                "gain_db": round(comparison.loudness.gain_db[name], 3),
-                "sha256": _sha256(temp),
-            }
-        staging.text(out_dir / KEY_JSON, json.dumps(key, indent=2) + "\n")
-        for name, png in figures.items():
-            staging.bytes(out_dir / FIGURES_DIR / f"{name}.png", png)
-        staging.text(out_dir / REPORT_HTML, report.html_page(title, sections))
-        image_paths = {name: f"{FIGURES_DIR}/{name}.png" for name in figures}
-        staging.text(out_dir / REPORT_MD, report.markdown_page(title, sections, image_paths))
-        staging.text(out_dir / SCORES_JSON, json.dumps(summary, indent=2) + "\n")
-    except OSError as exc:
-        staging.rollback()
-        raise UserError(f"cannot write to {out_dir}: {exc.strerror or exc}") from None
-    except BaseException:
-        staging.rollback()
-        raise
-    staging.commit()
-    for path in stale:
-        with contextlib.suppress(OSError):
-            path.unlink()
-    # One shared, whole-second modification time: the files' times say nothing
-    # about which version is which.
-    stamp_ns = int(time.time()) * 1_000_000_000
-    for path in blind_paths:
-        os.utime(path, ns=(stamp_ns, stamp_ns))
-
-
-def _print_human(comparison, out_dir: Path, with_clean: bool) -> None:
-    cols, rows = _rows(comparison, with_clean)
-    widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]
-    print("  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)))
-    for r in rows:
-        print("  ".join(v.ljust(w) for v, w in zip(r, widths, strict=True)))
-    print()
-    for name in comparison.names:
-        a = comparison.alignments.get(name)
-        if a is not None:
-            print(
-                f"{name}: delay {a.delay_samples} samples ({a.delay_ms:.2f} ms), "
-                f"listening gain {comparison.loudness.gain_db[name]:+.2f} dB"
-            )
-    for note in comparison.notes:
-        print(f"note: {note}")
-    print(f"report: {out_dir / REPORT_HTML}  (also {REPORT_MD}, {SCORES_JSON})")
-    print(f"blind listening: {out_dir / BLIND_DIR}/  key: {out_dir / KEY_JSON}")
-    print(f"caution: {LISTENING_CAUTION}")
-    print(f"caution: {ORIGINALS_CAUTION}")

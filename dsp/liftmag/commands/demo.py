@@ -57,7 +57,7 @@ def _clear_demo_folder(out: Path, force: bool) -> None:
     Only files the demo writes are removed (and figures/*.png), so ``--out ~ --force`` or
     a mistyped folder can never lose anything of the user's.
     """
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
 
     if os.path.lexists(out) and not out.is_dir():
         raise UserError(f"--out {out} is not a folder; give a folder for the demo")
@@ -132,7 +132,7 @@ def _pattern_png(model, scene, folder: Path) -> tuple[bytes, int]:
 
 def run(args: argparse.Namespace) -> int:
     from liftmag import report
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
     from liftmag.fileproc import learn_noise, open_source, process_file
     from liftmag.scenes import demo_scene
     from liftmag.settings import Settings

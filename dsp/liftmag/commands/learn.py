@@ -43,7 +43,7 @@ def run(args: argparse.Namespace) -> int:
         refuse_destination,
         write_atomically,
     )
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
     from liftmag.fileproc import learn_noise, mic_channels, open_source
     from liftmag.settings import Settings
     from liftmag.tracks import parse_mics

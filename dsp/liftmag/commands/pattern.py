@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from liftmag.cli import UserError
+from liftmag.errors import UserError
 
 HELP = """\
 Plot power beam patterns B(theta) = d^H H d of linear and lifted estimators for a linear

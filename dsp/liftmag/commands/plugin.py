@@ -7,11 +7,12 @@ import json
 import os
 import shutil
 import sys
-import tempfile
 from pathlib import Path
 from typing import Any
 
 from liftmag_lv2.bundle import BUILD_INFO, BUNDLE_NAME, read_build_info, source_digest
+
+from liftmag.audio_io import StagedOutputs
 
 HELP = (
     "Install the LV2 plugin (urn:liftmag:dialogue-2ch and -4ch) so audio editors that host "
@@ -83,7 +84,7 @@ def _ensure_bundle(rebuild: bool) -> Path:
     from liftmag_lv2 import build_shim
     from liftmag_lv2 import bundle as builder
 
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
 
     out = builder.default_out()
     if not rebuild and builder.is_current(out):
@@ -104,22 +105,16 @@ def _ensure_bundle(rebuild: bool) -> Path:
 
 def install(bundle: Path, dest: Path) -> Path:
     """Copy ``bundle`` to ``dest/liftmag.lv2`` whole (no half-copied bundle is ever seen)."""
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
 
     target = dest / BUNDLE_NAME
     if target.exists() and read_build_info(target) is None:
         raise UserError(f"{target} exists and is not a liftmag bundle; not replacing it")
-    dest.mkdir(parents=True, exist_ok=True)
-    stage = Path(tempfile.mkdtemp(prefix=f".{BUNDLE_NAME}.", dir=dest))
-    try:
-        copied = stage / BUNDLE_NAME
-        shutil.copytree(bundle, copied, ignore=shutil.ignore_patterns("__pycache__"))
+    with StagedOutputs() as staging:  # replaced whole on commit, nothing half-copied
+        copied = staging.stage_dir(target)
+        shutil.copytree(bundle, copied, ignore=shutil.ignore_patterns("__pycache__"),
+                        dirs_exist_ok=True)
         os.chmod(copied, 0o755)
-        if target.exists():
-            shutil.rmtree(target)
-        copied.replace(target)
-    finally:
-        shutil.rmtree(stage, ignore_errors=True)
     return target
 
 
@@ -153,7 +148,7 @@ def describe(bundle: Path) -> dict[str, Any]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
 
     dest = (args.dest or default_dest()).expanduser()
     if args.action == "install":

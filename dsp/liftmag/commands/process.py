@@ -98,14 +98,16 @@ def run(args: argparse.Namespace) -> int:
         OutputExistsError,
         refuse_destination,
     )
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
     from liftmag.fileproc import load_noise_model, open_source, process_file
+    from liftmag.settings import noise_mode_given_learned
     from liftmag.tracks import parse_mics
 
     learned = bool(args.noise_region or args.noise_model)
     args.output_mode, same_tracks = split_output_mode(args.output_mode)
-    # A learned model is held as learned unless the user asks the tracker to keep going.
-    settings = settings_from_args(args, noise_mode=args.noise_mode or ("hold" if learned else None))
+    settings = settings_from_args(
+        args, noise_mode=noise_mode_given_learned(args.noise_mode, learned)
+    )
     try:
         mics = parse_mics(args.mics) if args.mics is not None else ()
         source = open_source(args.inputs)

@@ -8,8 +8,8 @@ import json
 import sys
 from pathlib import Path
 
-from liftmag.cli import UserError
 from liftmag.commands.pattern import check_bearings, parse_float_list
+from liftmag.errors import UserError
 
 HELP = """\
 Monte-Carlo study of how well each estimator recovers a fixed magnitude A = 1 (uniform

@@ -21,7 +21,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from liftmag import audio_io
-    from liftmag.cli import UserError
+    from liftmag.errors import UserError
     from liftmag.fileproc import BLOCK_FRAMES
     from liftmag.tracks import dbfs_text, source_tracks, track_levels_db
 
