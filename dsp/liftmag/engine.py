@@ -79,6 +79,15 @@ from liftmag.noise import (
 )
 from liftmag.settings import Settings
 from liftmag.stft import StftConfig, StreamingStft, stft_config
+from liftmag.talkers import (
+    SpatialPrior,
+    TalkerMap,
+    choose_wanted,
+    find_sources,
+    spatial_prior,
+    take_features,
+    wanted_posterior,
+)
 
 MIN_FRAMES_PER_LIFT_DIM = 4  # auto lifts a bin only with >= 4 M^2 effective noise frames
 TRACK_STRIDE = 2  # running statistics use every second frame (see Processor._track)
@@ -296,6 +305,7 @@ class Processor:
         n_channels: int,
         noise_model: NoiseModel | None = None,
         take: TakeStatistics | None = None,
+        spatial: SpatialPrior | None = None,
     ) -> None:
         if int(n_channels) != n_channels or n_channels < 2:
             raise ValueError(
@@ -305,6 +315,7 @@ class Processor:
         self.n_channels = int(n_channels)
         self.sample_rate_hz = float(sample_rate_hz)
         self._init_stream(settings)
+        self._spatial = spatial
         if noise_model is not None:
             self.set_noise_model(noise_model)
         if take is not None:
@@ -702,6 +713,9 @@ class Processor:
         # Cap a long-held presence so the noise estimate cannot stagnate.
         p_used = np.where(smooth[used] > 0.99, np.minimum(spp[used], 0.99), spp[used])
         y_used = y[used]
+        if self._spatial is not None:
+            # Speech from another direction is noise here (liftmag.talkers).
+            p_used = p_used * wanted_posterior(self._spatial, y_used)
         lifted = lift_snapshots(y_used)  # shared by the noise and the speech statistics
         if s.noise_mode == "track":
             self._noise.update(y_used, 1.0 - p_used, self._noise_forgetting**TRACK_STRIDE, lifted)
@@ -930,6 +944,7 @@ def process_array(
     progress: Callable[[int], None] | None = None,
     chunk_samples: int = 1 << 16,
     whole_take: bool = True,
+    find_talkers: bool = True,
 ) -> NDArray[np.float64]:
     """Offline processing: the streaming engine with its latency trimmed.
 
@@ -944,12 +959,39 @@ def process_array(
     if x.ndim != 2:
         raise ValueError(f"expected (channels, samples), got shape {x.shape}")
     take = None
+    spatial = None
     if whole_take and uses_take_analysis(settings):
+        if find_talkers and noise_model is None and settings.noise_mode == "track":
+            spatial = talker_prior(settings, sample_rate_hz, x.shape[0],
+                                   iter_blocks(x, chunk_samples))[1]
         take = analyse_take(
-            settings, sample_rate_hz, x.shape[0], iter_blocks(x, chunk_samples), noise_model
+            settings, sample_rate_hz, x.shape[0], iter_blocks(x, chunk_samples), noise_model,
+            spatial=spatial,
         )
-    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model, take)
+    proc = Processor(settings, sample_rate_hz, x.shape[0], noise_model, take, spatial)
     return run_processor(proc, iter_blocks(x, chunk_samples), x.shape[1], progress)
+
+
+def talker_prior(
+    settings: Settings, sample_rate_hz: float, n_channels: int, blocks,
+    region_s: tuple[tuple[float, float], ...] = (),
+    progress: Callable[[int], None] | None = None,
+) -> tuple[TalkerMap, SpatialPrior | None]:
+    """Find the take's talkers (:mod:`liftmag.talkers`) and the engine's spatial prior.
+
+    A bearing in ``settings`` (with the spacing) or ``region_s`` chooses the wanted talker;
+    otherwise the most direct source is taken.
+    """
+    features = take_features(blocks, sample_rate_hz, n_channels, progress)
+    target = None
+    if settings.target_deg is not None and settings.mic_spacing_m is not None:
+        positions = linear_array_m(n_channels, settings.mic_spacing_m)
+        steer = steering_vectors(positions, settings.target_deg, np.array([1.0]), reference=0)
+        # d_m = exp(-j 2 pi f tau_m) at 1 Hz gives tau_m = -angle / (2 pi).
+        target = -np.angle(steer[0, 1:]) / (2 * np.pi)
+    talkers = choose_wanted(find_sources(features), features, target, tuple(region_s))
+    freqs = stft_config(sample_rate_hz, settings.frame_s).frequencies_hz
+    return talkers, spatial_prior(talkers, freqs)
 
 
 def uses_take_analysis(settings: Settings) -> bool:
@@ -1127,6 +1169,7 @@ def analyse_take(
     blocks,
     noise_model: NoiseModel | None = None,
     progress: Callable[[int], None] | None = None,
+    spatial: SpatialPrior | None = None,
 ) -> TakeStatistics:
     """First pass over a whole take: the statistics stage alone, summing over every frame.
 
@@ -1135,7 +1178,7 @@ def analyse_take(
     speech frame are summed without forgetting. Memory does not grow with the take.
     """
     analysis = settings.replace(estimator="linear-wiener", lookahead_s=0.0, bypass=False)
-    proc = Processor(analysis, sample_rate_hz, n_channels, noise_model)
+    proc = Processor(analysis, sample_rate_hz, n_channels, noise_model, spatial=spatial)
     f = proc.config.n_bins
     if noise_model is None:  # the linear tracker needs no fourth-order running sums
         proc._noise = MomentAccumulator(f, proc.n_channels, with_lift=False)

@@ -21,6 +21,7 @@ from liftmag.engine import (
     NoiseLearner,
     Processor,
     analyse_take,
+    talker_prior,
     run_processor,
     uses_take_analysis,
 )
@@ -58,6 +59,8 @@ class ProcessResult:
     carried_chunks: tuple[str, ...]
     warnings: tuple[str, ...] = field(default_factory=tuple)
     mics: tuple[str, ...] = ()
+    talkers: dict | None = None  # liftmag.talkers.TalkerMap.to_dict(), when the take was read
+    talker_summary: str = ""
 
     @property
     def realtime_factor(self) -> float:
@@ -186,6 +189,8 @@ def process_file(
     mics: Sequence[str] = (),
     same_tracks: bool = False,
     whole_take: bool = True,
+    find_talkers: bool = True,
+    talker_regions_s: Sequence[tuple[float, float]] = (),
 ) -> ProcessResult:
     """Clean one take (a multichannel file or a group of mono stems) into ``output``.
 
@@ -198,6 +203,11 @@ def process_file(
     With ``whole_take`` the take is read twice: a first pass learns its noise (from every
     speech pause, unless a model is given) and its talker, so the engine starts warm
     (:func:`liftmag.engine.analyse_take`); without it the output is the plugin's.
+    With ``find_talkers`` (and no noise model or region, or with ``talker_regions_s``) a
+    pass before that finds the take's directional voices and which is the wanted talker
+    (:mod:`liftmag.talkers`), so other voices are learned as noise; ``talker_regions_s``
+    (stretches where only the wanted talker speaks) or a bearing in ``settings`` decide
+    the wanted one.
 
     ``mics`` chooses the array's microphones (1-based numbers or iXML track names, see
     :func:`liftmag.tracks.choose_mics`); ``settings.reference_channel`` then counts
@@ -235,19 +245,36 @@ def process_file(
             f"{min_frames / fs:.3f} s (a few STFT frames) to tell speech from noise"
         )
     total = source.frames
-    passes = 1
-    if whole_take and uses_take_analysis(settings):
-        passes = 2
+    n_mics = len(take.mics)
+    analysing = whole_take and uses_take_analysis(settings)
+    finding = analysing and (
+        bool(talker_regions_s)
+        or (find_talkers and noise_model is None and settings.noise_mode == "track")
+    )
+    passes = 1 + analysing + finding
+    talker_map = spatial = None
+
+    def pass_progress(index: int):
+        if progress is None:
+            return None
+        return lambda done: progress((index * total + done) // passes, total)
+
+    if finding:
+        talker_map, spatial = talker_prior(
+            settings, fs, n_mics, _mic_blocks(source, take.mics), tuple(talker_regions_s),
+            progress=pass_progress(0),
+        )
+    if analysing:
         take_stats = analyse_take(
-            settings, fs, len(take.mics), _mic_blocks(source, take.mics), noise_model,
-            progress=(lambda done: progress(done // 2, total)) if progress else None,
+            settings, fs, n_mics, _mic_blocks(source, take.mics), noise_model,
+            progress=pass_progress(passes - 2), spatial=spatial,
         )
         if noise_model is None and settings.noise_mode == "track":
             noise_desc = (
                 f"learned from the take's own speech pauses ({take_stats.pause_duration_s:.1f} "
                 "s), then tracked"
             )
-        proc = Processor(settings, fs, len(take.mics), noise_model, take_stats)
+        proc = Processor(settings, fs, n_mics, noise_model, take_stats, spatial)
     out_tracks = tracks.output_tracks(take.tracks, take.mics, take.reference, take.mode)
     container, container_subtype, container_note = audio_io.output_container(output, source)
     if container_note and subtype is None:
@@ -271,8 +298,7 @@ def process_file(
             _track_peaks(blocks, peaks),
             total,
             progress=(
-                (lambda done: progress(((passes - 1) * total + done) // passes, total))
-                if progress else None
+                pass_progress(passes - 1)
             ),
             sink=sink,
         )
@@ -307,6 +333,8 @@ def process_file(
         clipped_samples=report.clipped_samples, peak_dbfs=report.peak_dbfs,
         carried_chunks=tuple(report.carried_chunks), warnings=tuple(warnings),
         mics=tuple(take.tracks[i].label for i in take.mics),
+        talkers=talker_map.to_dict(settings.mic_spacing_m) if talker_map else None,
+        talker_summary=talker_map.describe(settings.mic_spacing_m) if talker_map else "",
     )
 
 

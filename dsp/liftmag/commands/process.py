@@ -49,9 +49,27 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
              "output then equals the LV2 plugin's with the same settings, delayed by its "
              "reported latency",
     )
+    add_talker_arguments(parser)
     add_mics_argument(parser)
     add_settings_arguments(parser)
     offer_file_output_modes(parser)
+
+
+def add_talker_arguments(parser: argparse.ArgumentParser) -> None:
+    """``--talker-region`` and ``--other-voices``, shared by ``process`` and ``batch``."""
+    parser.add_argument(
+        "--talker-region", action="append", type=parse_region, default=[],
+        metavar="START:END",
+        help="a stretch of the take in seconds where only the wanted talker speaks "
+             "(repeatable): decides which voice is kept when the take holds several",
+    )
+    parser.add_argument(
+        "--other-voices", choices=("find", "ignore"), default="find",
+        help="find: when no room tone or noise region is given, read the take once more to "
+             "find voices from other directions and learn them as noise, keeping the most "
+             "direct one (or the one chosen by --target-deg or --talker-region); "
+             "ignore: treat every voice as the talker (default: find)",
+    )
 
 
 def add_mics_argument(parser: argparse.ArgumentParser) -> None:
@@ -118,6 +136,7 @@ def run(args: argparse.Namespace) -> int:
             args.inputs, out, settings, noise_model=model, noise_regions_s=args.noise_region,
             force=args.force, subtype=args.subtype, mics=mics, same_tracks=same_tracks,
             whole_take=not args.one_pass,
+            find_talkers=args.other_voices == "find", talker_regions_s=args.talker_region,
             progress=progress_bar("cleaning", source.frames, source.sample_rate_hz),
         )
     except OutputExistsError:
@@ -144,4 +163,6 @@ def run(args: argparse.Namespace) -> int:
             f"{lo:g}-{hi:g} Hz {100 * share:.0f} %" for lo, hi, share in result.lifted_share_by_band
         )
         print(f"  lifted estimator, share of frames per band: {bands}")
+    if result.talker_summary:
+        print(f"  talkers: {result.talker_summary}")
     return 0
