@@ -21,8 +21,8 @@ from liftmag.engine import (
     NoiseLearner,
     Processor,
     analyse_take,
-    talker_prior,
     run_processor,
+    talker_prior,
     uses_take_analysis,
 )
 from liftmag.noise import NoiseModel

@@ -22,15 +22,19 @@ Method
 * **The wanted talker.** By default the most *direct and persistent* source: the highest
   median coherence (which favours the voice closest to the array, whose direct sound
   dominates its reverberation) times its share of the active frames (a steady noise source
-  can be as coherent in a dry room, but holds few frames). A bearing (with the microphone spacing) or a stretch of the take where
-  only the wanted talker speaks overrides it.
-* **Time-frequency posterior.** With far-field steering vectors ``a_c(f)`` built from the
+  can be as coherent in a dry room, but holds few frames). A bearing (with the microphone
+  spacing) or a stretch of the take where only the wanted talker speaks overrides it.
+* **Time-frequency weight.** With far-field steering vectors ``a_c(f)`` built from the
   sources' delays, each bin's share of power along ``a_c``,
-  ``r_c = |a_c^H y|^2 / (M |y|^2)``, gives the posterior of the wanted source
-  ``w = exp(kappa r_w) / sum_c exp(kappa r_c)`` (a complex-Watson-like mixture with equal
-  weights; Sawada et al. 2011). Where the sources cannot be told apart at a frequency (low
-  frequencies on a small array, spatial aliasing on a wide one) the posterior is pulled to 1,
-  so the engine behaves as it does without this analysis.
+  ``r_c = |a_c^H y|^2 / (M |y|^2)``, gives the weight of the wanted source
+  ``w = 1 / (1 + exp(kappa (max_c r_c - r_w - margin)))``: a bin counts as another source's
+  only when that source clearly holds more of it than the wanted talker (a logistic form of
+  the direction-based masks of spatial clustering; Sawada et al. 2011). Only other sources
+  that are clearly directional count (``MIN_OTHER_COHERENCE``). Where the sources cannot be
+  told apart at a frequency (low frequencies on a small array, spatial aliasing on a wide
+  one) the weight is pulled to 1, so the engine behaves as it does without this analysis.
+  The engine multiplies its speech-presence probability by ``w``, so the noise statistics
+  take in the other voices and the talker's statistics leave them out.
 
 References
 ----------
@@ -382,7 +386,7 @@ def take_features(blocks, sample_rate_hz: float, n_channels: int,
                   progress=None) -> FrameFeatures:
     """:func:`frame_features` over a whole take given as ``(M, n)`` blocks, in constant memory
     apart from the features themselves (a few numbers per 64 ms frame)."""
-    length = max(32, int(round(FEATURE_FRAME_S * sample_rate_hz)))
+    length = max(32, round(FEATURE_FRAME_S * sample_rate_hz))
     frame_s = length / sample_rate_hz
     window = np.hanning(length)
     freqs = np.fft.rfftfreq(length, 1.0 / sample_rate_hz)
