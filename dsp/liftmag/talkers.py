@@ -48,6 +48,7 @@ frequency bin-wise clustering and permutation alignment", IEEE Trans. ASLP 19(3)
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -63,7 +64,7 @@ ACTIVE_ABOVE_FLOOR_DB = 6.0  # frames this far above the take's quiet level coun
 MIN_PEAK = 0.1  # frames whose GCC peak is lower carry no usable direction
 MIN_SOURCE_SHARE = 0.08  # a source holds at least this share of the active frames
 MIN_OTHER_COHERENCE = 0.3  # another source is learned as noise only if this directional
-MAX_CLUSTER_POINTS = 4000  # mean shift runs on at most this many frames (evenly strided)
+MAX_CLUSTER_POINTS = 2000  # mean shift runs on at most this many frames (evenly strided)
 KAPPA = 60.0  # steepness of the time-frequency posterior
 MARGIN = 0.2  # lead in power share another source needs before a bin counts as noise
 
@@ -187,6 +188,14 @@ def running_floor(power: NDArray, state: tuple | None, frame_s: float) -> tuple[
     return FLOOR_BIAS * out, (smooth, current)
 
 
+@functools.lru_cache(maxsize=8)
+def _gcc_kernel(n_bins: int, first_hz: float, step_hz: float) -> tuple[NDArray, NDArray]:
+    """Lags (L,) and ``exp(j 2 pi f tau)`` (F, L) for evenly spaced band frequencies."""
+    f = first_hz + step_hz * np.arange(n_bins)
+    lags = np.arange(-MAX_DELAY_S, MAX_DELAY_S + DELAY_STEP_S / 2, DELAY_STEP_S)
+    return lags, np.exp(2j * np.pi * f[:, None] * lags[None, :])
+
+
 def frame_features(
     spectra: NDArray, frequencies_hz: NDArray, floor: NDArray, start_s: float, frame_s: float
 ) -> FrameFeatures:
@@ -202,8 +211,7 @@ def frame_features(
     power = np.mean(np.abs(spec) ** 2, axis=0)
     weight = np.clip(1.0 - floor[:, band] / np.maximum(power, 1e-300), 0.0, None)
     total = np.maximum(weight.sum(axis=1), 1e-12)
-    lags = np.arange(-MAX_DELAY_S, MAX_DELAY_S + DELAY_STEP_S / 2, DELAY_STEP_S)
-    kernel = np.exp(2j * np.pi * f[:, None] * lags[None, :])  # (F, L)
+    lags, kernel = _gcc_kernel(f.size, float(f[0]), float(f[1] - f[0]) if f.size > 1 else 1.0)
     delays = np.zeros((n, m - 1))
     peaks = np.zeros((n, m - 1))
     rows = np.arange(n)
@@ -256,8 +264,11 @@ def find_sources(features: FrameFeatures) -> tuple[Source, ...]:
     pts, peak, level = pts[::stride], features.peak[active][::stride], \
         features.level_db[active][::stride]
     h = _bandwidth_s(features)
-    d2 = np.sum((pts[:, None, :] - pts[None, :, :]) ** 2, axis=-1)
+    sq = np.sum(pts**2, axis=-1)
+    # Squared distances from inner products: one N x N array (32 MB at MAX_CLUSTER_POINTS).
+    d2 = np.maximum(sq[:, None] + sq[None, :] - 2.0 * pts @ pts.T, 0.0)
     density = np.exp(-0.5 * d2 / h**2) @ peak
+    del d2
     remaining = np.ones(pts.shape[0], bool)
     sources = []
     while remaining.sum() >= MIN_SOURCE_SHARE * pts.shape[0]:
