@@ -252,7 +252,7 @@ def test_engine_low_rank_lifted_mv_equals_the_direct_solve(m: int):
     # (C + P K) w = rho_g directly and is itself checked against the linear MVDR on Gaussian
     # noise (test_estimators). The engine's rank-(2M - 1) eigen-structure must give the same
     # unbiased power and variance for any C, RTF, prior and snapshot.
-    from liftmag.engine import Processor
+    from liftmag.engine import lifted_mv_power, lifted_mv_structure, lifted_mv_terms
     from liftmag.estimators import lifted_mv_weights, outer
     from liftmag.lift import crossterm_lift_covariance, lift_snapshots, rho
 
@@ -265,12 +265,11 @@ def test_engine_low_rank_lifted_mv_equals_the_direct_solve(m: int):
     y = rng.standard_normal((n, m)) + 1j * rng.standard_normal((n, m))
     values, vectors = np.linalg.eigh(c)
     inv_sqrt = np.swapaxes(vectors, 1, 2) / np.sqrt(values)[:, :, None]
-    proc = Processor(Settings(estimator="lifted-mv"), 16000, m)
-    active, q, lam, s_active = proc._mv_structure(inv_sqrt, np.ones(n, int), g)
+    active, q, lam, s_active = lifted_mv_structure(inv_sqrt, np.ones(n, int), g, False)
     rho_g = rho(outer(g))
-    lf = Processor._mv_terms(q, lam, s_active, rho_g[active])
+    lf = lifted_mv_terms(q, lam, s_active, rho_g[active])
     projected = np.einsum("fij,fj->fi", lf["projection"], lift_snapshots(y) - rho(np.eye(m)))
-    p_hat, noise_eq = Processor._lifted_mv(projected[:, :-1], projected[:, -1], prior, lf)
+    p_hat, noise_eq = lifted_mv_power(projected[:, :-1], projected[:, -1], prior, lf)
     w, variance = lifted_mv_weights(rho_g, c, crossterm_lift_covariance(g, np.eye(m)), prior)
     p_ref = np.einsum("fd,fd->f", w, lift_snapshots(y) - rho(np.eye(m)))
     np.testing.assert_allclose(p_hat, p_ref, rtol=1e-8, atol=1e-10 * np.abs(p_ref).max())
