@@ -13,6 +13,7 @@ External references:
 from __future__ import annotations
 
 import math
+import os
 import struct
 from pathlib import Path
 
@@ -339,4 +340,54 @@ def test_interrupt_while_the_temporary_file_is_being_made_leaves_nothing(
     with pytest.raises(KeyboardInterrupt):
         with AtomicAudioWriter(tmp_path / "out.wav", sample_rate_hz=RATE_HZ, channels=2):
             pass
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("where", ["writer", "atomic bytes", "staged file", "staged folder"])
+def test_a_signal_as_the_temporary_path_is_handed_over_leaves_nothing(
+    tmp_path: Path, monkeypatch, where: str
+) -> None:
+    # A SIGTERM arriving just after the temporary file exists but before its owner has
+    # recorded it (found by the SIGTERM loop: 1 in about 40 rounds) must not leave the file
+    # behind. The signal is sent from inside the creation, as the kernel could deliver it
+    # there; POSIX pthread_sigmask holds it until the owner has the path.
+    import signal
+
+    from liftmag import audio_io
+
+    class Stop(Exception):
+        pass
+
+    def raise_stop(signum, frame):
+        raise Stop
+
+    previous = signal.signal(signal.SIGTERM, raise_stop)
+    real_file, real_dir = audio_io._create_temp, audio_io._create_temp_dir
+
+    def signalled(real):
+        def create(destination):
+            made = real(destination)
+            os.kill(os.getpid(), signal.SIGTERM)  # delivered at once unless held back
+            return made
+
+        return create
+
+    monkeypatch.setattr(audio_io, "_create_temp", signalled(real_file))
+    monkeypatch.setattr(audio_io, "_create_temp_dir", signalled(real_dir))
+    try:
+        with pytest.raises(Stop):
+            if where == "writer":
+                with AtomicAudioWriter(tmp_path / "out.wav", sample_rate_hz=RATE_HZ,
+                                       channels=2):
+                    pass
+            elif where == "atomic bytes":
+                audio_io.write_atomically(tmp_path / "out.bin", b"abc")
+            else:
+                with audio_io.StagedOutputs() as staging:
+                    if where == "staged file":
+                        staging.file(tmp_path / "a.txt")
+                    else:
+                        staging.stage_dir(tmp_path / "folder")
+    finally:
+        signal.signal(signal.SIGTERM, previous)
     assert list(tmp_path.iterdir()) == []

@@ -18,8 +18,10 @@ import math
 import os
 import secrets
 import shutil
+import signal
 import stat
 import struct
+import threading
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -574,6 +576,7 @@ class AtomicAudioWriter:
         self._clips = self.subtype not in _FLOAT_SUBTYPES
         self._file: sf.SoundFile | None = None
         self._temp: Path | None = None
+        self._extra: tuple[Path, int | None] | None = None  # the chunked copy being made
         self._lock_fd: int | None = None
         self._frames = 0
         self._clipped = 0
@@ -593,8 +596,10 @@ class AtomicAudioWriter:
             self._chunks, self._dropped = (), tuple(chunk_id for chunk_id, _ in found)
 
     def __enter__(self) -> AtomicAudioWriter:
-        self._temp, self._lock_fd = _create_temp(self.path)
         try:
+            # A signal held back here arrives at the end of the with, inside this try.
+            with _signals_deferred():
+                self._temp, self._lock_fd = _create_temp(self.path)
             self._file = sf.SoundFile(
                 str(self._temp), "w", self.sample_rate_hz, self.channels,
                 self.subtype, format=self.format,
@@ -665,13 +670,17 @@ class AtomicAudioWriter:
         self._file.close()
         self._file = None
         if self._chunks:
-            chunked, chunked_fd = _create_temp(self.path)
+            with _signals_deferred():
+                self._extra = _create_temp(self.path)  # _discard removes it from here on
+            chunked, chunked_fd = self._extra
             try:
                 riffchunks.copy_with_chunks(self._temp, chunked, self._chunks)
             finally:
-                self._temp.unlink()
-                _release(self._lock_fd)
-                self._temp, self._lock_fd = chunked, chunked_fd
+                with _signals_deferred():
+                    self._temp.unlink()
+                    _release(self._lock_fd)
+                    self._temp, self._lock_fd = chunked, chunked_fd
+                    self._extra = None
         _fsync(self._temp)
         if not self.force and os.path.lexists(self.path):
             raise AudioOutputError(f"{self.path} appeared while writing; not replacing it")
@@ -697,6 +706,11 @@ class AtomicAudioWriter:
             with contextlib.suppress(FileNotFoundError):
                 self._temp.unlink()
             self._temp = None
+        if self._extra is not None:
+            with contextlib.suppress(FileNotFoundError):
+                self._extra[0].unlink()
+            _release(self._extra[1])
+            self._extra = None
         _release(self._lock_fd)
         self._lock_fd = None
 
@@ -907,6 +921,46 @@ def temp_prefix(destination: PathLike) -> str:
     return f".{name}.partial-"
 
 
+_DEFERRED_SIGNALS = tuple(
+    getattr(signal, name) for name in ("SIGINT", "SIGTERM", "SIGHUP") if hasattr(signal, name)
+)
+
+
+@contextlib.contextmanager
+def _signals_deferred() -> Iterator[None]:
+    """Hold SIGINT, SIGTERM and SIGHUP back while the block hands a temporary path over.
+
+    A signal turned into an exception between a temporary file's creation and the moment its
+    owner records it (a tuple assignment, a swap of two names) would leave the file behind
+    with nobody to remove it (found by the SIGTERM loop: 1 in about 40 rounds). Inside the
+    block the handlers only note a signal; the noted signal goes to the handler that was
+    there as soon as the block ends, when the owner can clean up. (Blocking with
+    ``pthread_sigmask`` is not enough: the kernel may hand the signal to another thread,
+    e.g. a BLAS worker, and Python then runs the handler in the main thread at once.)
+    Python runs signal handlers in the main thread only, so other threads need nothing.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    noted: list[int] = []
+    previous = {}
+    for signum in _DEFERRED_SIGNALS:
+        handler = signal.getsignal(signum)
+        if handler not in (signal.SIG_IGN, None):
+            previous[signum] = signal.signal(signum, lambda n, _frame: noted.append(n))
+    try:
+        yield
+    finally:
+        for signum, handler in previous.items():
+            signal.signal(signum, handler)
+        for signum in dict.fromkeys(noted):
+            handler = previous[signum]
+            if callable(handler):
+                handler(signum, None)
+            else:  # SIG_DFL: let the default action happen, as it would have
+                os.kill(os.getpid(), signum)
+
+
 def _create_temp(destination: Path) -> tuple[Path, int | None]:
     """A new, empty temporary file beside ``destination``, and a descriptor holding a lock.
 
@@ -995,21 +1049,24 @@ def write_atomically(path: Path, data: bytes) -> None:
 
     Raises :class:`AudioOutputError` (one line) if the file system refuses.
     """
-    temp, lock_fd = _create_temp(path)
+    temp: Path | None = None
+    lock_fd: int | None = None
     try:
+        # A signal held back here arrives at the end of the with, inside this try.
+        with _signals_deferred():
+            temp, lock_fd = _create_temp(path)
         with open(temp, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
         _refuse_special(path)
         os.replace(temp, path)
-    except OSError as exc:
-        with contextlib.suppress(FileNotFoundError):
-            temp.unlink()
-        raise _output_error(path, exc) from exc
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            temp.unlink()
+    except BaseException as exc:
+        if temp is not None:
+            with contextlib.suppress(FileNotFoundError):
+                temp.unlink()
+        if isinstance(exc, OSError) and not isinstance(exc, AudioOutputError):
+            raise _output_error(path, exc) from exc
         raise
     finally:
         _release(lock_fd)
@@ -1113,9 +1170,10 @@ class StagedOutputs:
         """A new, empty temporary file that becomes ``final`` on commit; write into it."""
         final = Path(final)
         self.ensure_dir(final.parent)
-        temp, fd = _create_temp(final)
-        self._staged.append((temp, final))
-        self._locks.append(fd)
+        with _signals_deferred():  # recorded before a signal can interrupt
+            temp, fd = _create_temp(final)
+            self._staged.append((temp, final))
+            self._locks.append(fd)
         return temp
 
     def write_bytes(self, final: PathLike, data: bytes) -> Path:
@@ -1138,9 +1196,10 @@ class StagedOutputs:
         """
         final = Path(final)
         self.ensure_dir(final.parent)
-        temp, fd = _create_temp_dir(final)
-        self._staged.append((temp, final))
-        self._locks.append(fd)
+        with _signals_deferred():
+            temp, fd = _create_temp_dir(final)
+            self._staged.append((temp, final))
+            self._locks.append(fd)
         return temp
 
     def commit(self) -> None:
@@ -1191,7 +1250,8 @@ class StagedOutputs:
     def _swap_dir(self, temp: Path, final: Path) -> None:
         # rename(2) cannot replace a non-empty directory: move the old one aside under a
         # locked temporary name (swept if we die here), put the new one in, then delete.
-        aside, fd = _create_temp_dir(final)
+        with _signals_deferred():
+            aside, fd = _create_temp_dir(final)
         try:
             os.replace(final, aside / final.name)
             try:
