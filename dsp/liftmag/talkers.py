@@ -64,6 +64,7 @@ ACTIVE_ABOVE_FLOOR_DB = 6.0  # frames this far above the take's quiet level coun
 MIN_PEAK = 0.1  # frames whose GCC peak is lower carry no usable direction
 MIN_SOURCE_SHARE = 0.08  # a source holds at least this share of the active frames
 MIN_OTHER_COHERENCE = 0.3  # another source is learned as noise only if this directional
+KERNEL_WIDTH_S = 2.0 * DELAY_STEP_S  # mean-shift kernel: two steps of the GCC grid
 MAX_CLUSTER_POINTS = 2000  # mean shift runs on at most this many frames (evenly strided)
 KAPPA = 60.0  # steepness of the time-frequency posterior
 MARGIN = 0.2  # lead in power share another source needs before a bin counts as noise
@@ -246,10 +247,6 @@ def _active(features: FrameFeatures) -> NDArray:
     return (features.level_db > quiet + ACTIVE_ABOVE_FLOOR_DB) & (features.peak > MIN_PEAK)
 
 
-def _bandwidth_s(features: FrameFeatures) -> float:
-    return 2.0 * DELAY_STEP_S
-
-
 def find_sources(features: FrameFeatures) -> tuple[Source, ...]:
     """Directional sources: mean-shift modes of the active frames' delay vectors.
 
@@ -263,7 +260,7 @@ def find_sources(features: FrameFeatures) -> tuple[Source, ...]:
     stride = max(1, -(-pts.shape[0] // MAX_CLUSTER_POINTS))
     pts, peak, level = pts[::stride], features.peak[active][::stride], \
         features.level_db[active][::stride]
-    h = _bandwidth_s(features)
+    h = KERNEL_WIDTH_S
     sq = np.sum(pts**2, axis=-1)
     # Squared distances from inner products: one N x N array (32 MB at MAX_CLUSTER_POINTS).
     d2 = np.maximum(sq[:, None] + sq[None, :] - 2.0 * pts @ pts.T, 0.0)
@@ -304,7 +301,7 @@ def choose_wanted(
     active = int(np.count_nonzero(_active(features)))
     if not sources and target_delays_s is None and not region_s:
         return TalkerMap((), None, "none", 0.0, active)
-    h = _bandwidth_s(features)
+    h = KERNEL_WIDTH_S
     if target_delays_s is not None:
         target = np.asarray(target_delays_s, dtype=float)
         dist = [float(np.linalg.norm(np.asarray(s.delays_s) - target)) for s in sources]
