@@ -213,3 +213,14 @@ def test_a_talker_region_without_speech_is_refused(tmp_path, capsys):
 def test_speed_of_sound_agrees_with_the_room_simulator():
     # The test's delays and the simulated rooms use the same c.
     assert pra.constants.get("c") == pytest.approx(C_M_S, abs=0.5)
+
+
+def test_features_do_not_depend_on_how_the_take_is_read(two_talkers):
+    # A streaming pass must see the same frames whatever the block size (a file is read in
+    # blocks, an array in one piece); only rounding may differ (batched FFTs and products).
+    x, _, _ = two_talkers
+    whole = talkers.take_features([x], FS, 2)
+    pieces = talkers.take_features(iter_blocks(x, 777), FS, 2)
+    assert whole.delays_s.shape == pieces.delays_s.shape
+    np.testing.assert_allclose(whole.delays_s, pieces.delays_s, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(whole.peak, pieces.peak, rtol=1e-9)

@@ -38,6 +38,8 @@ Method
 
 References
 ----------
+R. Martin, "Noise power spectral density estimation based on optimal smoothing and minimum
+statistics", IEEE Trans. Speech and Audio Processing 9(5), 2001.
 C. H. Knapp, G. C. Carter, "The generalized correlation method for estimation of time
 delay", IEEE Trans. ASSP 24(4), 1976.
 D. Comaniciu, P. Meer, "Mean shift: a robust approach toward feature space analysis",
@@ -400,28 +402,27 @@ def take_features(blocks, sample_rate_hz: float, n_channels: int,
     freqs = np.fft.rfftfreq(length, 1.0 / sample_rate_hz)
     pending = np.zeros((n_channels, 0))
     parts: list[FrameFeatures] = []
-    floor = None
+    state: tuple | None = None  # the running floor between calls
     start_s = 0.0
+
+    def analyse(samples: NDArray) -> None:
+        nonlocal state, start_s
+        n = samples.shape[1] // length
+        spectra = np.fft.rfft(samples.reshape(n_channels, n, length) * window, axis=-1)
+        floors, state = running_floor(np.mean(np.abs(spectra) ** 2, axis=0), state, frame_s)
+        parts.append(frame_features(spectra, freqs, floors, start_s, frame_s))
+        start_s += n * frame_s
+
     done = 0
     for block in blocks:
         pending = np.concatenate([pending, np.asarray(block, dtype=float)], axis=1)
-        n = pending.shape[1] // length
         done += block.shape[1]
-        if n >= 16:
-            frames = pending[:, : n * length].reshape(n_channels, n, length)
+        n = pending.shape[1] // length
+        if n >= 16:  # frames in batches, so the per-call overhead stays small
+            analyse(pending[:, : n * length])
             pending = pending[:, n * length :]
-            spectra = np.fft.rfft(frames * window, axis=-1)
-            power = np.mean(np.abs(spectra) ** 2, axis=0)
-            floors, floor = running_floor(power, floor, frame_s)
-            parts.append(frame_features(spectra, freqs, floors, start_s, frame_s))
-            start_s += n * frame_s
         if progress is not None:
             progress(done)
-    n = pending.shape[1] // length
-    if n:
-        frames = pending[:, : n * length].reshape(n_channels, n, length)
-        spectra = np.fft.rfft(frames * window, axis=-1)
-        power = np.mean(np.abs(spectra) ** 2, axis=0)
-        parts.append(frame_features(spectra, freqs, running_floor(power, floor, frame_s)[0],
-                                    start_s, frame_s))
+    if pending.shape[1] >= length:
+        analyse(pending[:, : (pending.shape[1] // length) * length])
     return join_features(parts)
