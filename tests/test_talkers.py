@@ -224,3 +224,87 @@ def test_features_do_not_depend_on_how_the_take_is_read(two_talkers):
     assert whole.delays_s.shape == pieces.delays_s.shape
     np.testing.assert_allclose(whole.delays_s, pieces.delays_s, rtol=0, atol=1e-12)
     np.testing.assert_allclose(whole.peak, pieces.peak, rtol=1e-9)
+
+
+def test_frames_held_by_the_other_voice_are_its_solo_frames(two_talkers):
+    # The far talker's solo stretch is the take's own "other voice, not ours" region: many of
+    # its frames are marked, none of the near talker's solo stretch, and no frame beside one
+    # of the near talker's frames.
+    x, _, _ = two_talkers
+    feats = talkers.take_features(iter_blocks(x, 1 << 15), FS, 2)
+    tm = talkers.choose_wanted(talkers.find_sources(feats), feats)
+    held = talkers.other_frames(tm, feats)
+    in_far = (feats.times_s >= SOLO_FAR_S[0] + 0.2) & (feats.times_s < SOLO_FAR_S[1])
+    in_near = (feats.times_s >= SOLO_NEAR_S[0]) & (feats.times_s < SOLO_NEAR_S[1] - 0.1)
+    assert held[in_far].mean() > 0.3, held[in_far].mean()
+    assert not held[in_near].any()
+    prior = talkers.spatial_prior(tm, np.linspace(0, FS / 2, 257), feats)
+    frame_s = prior.feature_frame_s
+    k = int(np.flatnonzero(held)[0])
+    weights = prior.frame_weight(np.array([(k + 0.5) * frame_s, -1.0, 1e6]))
+    np.testing.assert_array_equal(weights, [0.0, 1.0, 1.0])
+
+
+def test_two_voices_as_loud_as_each_other_are_left_undecided(tmp_path, capsys):
+    # Two talkers at the same distance from the array (so the same direct level: the
+    # inverse-square law) and the same speech level, from different bearings, both talking
+    # throughout: nothing in the take says which one is wanted. The search must say so and
+    # keep both as speech, which is the engine without the analysis.
+    from liftmag.engine import process_array
+
+    n = 10 * FS
+    pos = rooms.ARRAY_CENTRE_M[:, None] + np.outer([1.0, 0.0, 0.0],
+                                                    np.array([-0.5, 0.5]) * SPACING_M)
+    room = rooms.build_room([rooms.position_at(45.0, 1.0), rooms.position_at(135.0, 1.0)],
+                            pos, FS)
+    a = _speech("talker_a", n)
+    b = _speech("talker_b", n)
+    b *= np.std(a) / np.std(b)
+    x = (rooms.source_images(room, 0, a, slice(0, n))
+         + rooms.source_images(room, 1, b, slice(0, n)))
+    x += 1e-3 * np.random.default_rng(5).standard_normal(x.shape)
+    tm, prior = talker_prior(Settings(), FS, 2, iter_blocks(x, 1 << 15))
+    assert len(tm.rivals) >= 1, tm
+    assert tm.chosen_by == "undecided" and tm.removed == () and prior is None
+    assert "no way to tell" in tm.describe(SPACING_M)
+    np.testing.assert_array_equal(process_array(x, FS), process_array(x, FS, find_talkers=False))
+    take = tmp_path / "take.wav"
+    soundfile.write(take, x.T, FS, subtype="FLOAT")
+    assert cli_main(["process", str(take), "-o", str(tmp_path / "o.wav"), "--json"]) == 0
+    result = json.loads(capsys.readouterr().out)
+    assert result["talkers"]["chosen_by"] == "undecided"
+    assert not any(s["learned_as_noise"] for s in result["talkers"]["sources"])
+
+
+def test_both_talkers_are_found_with_four_microphones():
+    # Four microphones 5 cm apart in the same image-source room: each frame's delay vector has
+    # three pairs, each with its own error, and both talkers must still be found at their
+    # far-field time differences tau_m = -m d cos(theta) / c (pyroomacoustics geometry).
+    spacing_m = 0.05
+    n = round(TAKE_S * FS)
+    pos = rooms.ARRAY_CENTRE_M[:, None] + np.outer([1.0, 0.0, 0.0],
+                                                    (np.arange(4) - 1.5) * spacing_m)
+    room = rooms.build_room([rooms.position_at(*NEAR), rooms.position_at(*FAR)], pos, FS)
+    near = np.zeros(n)
+    far = np.zeros(n)
+    a, b = (round(t * FS) for t in SOLO_NEAR_S)
+    near[a:b] = _speech("talker_a", b - a)
+    a, b = (round(t * FS) for t in SOLO_FAR_S)
+    far[a:b] = _speech("talker_b", b - a)
+    both = round(7.5 * FS)
+    near[both:] = _speech("talker_a", n - both)
+    far[both:] = _speech("talker_b", n - both)[::-1].copy()
+    x = (rooms.source_images(room, 0, near, slice(0, n))
+         + rooms.source_images(room, 1, far, slice(0, n)))
+    x += 1e-3 * np.random.default_rng(11).standard_normal(x.shape)
+    feats = talkers.take_features(iter_blocks(x, 1 << 15), FS, 4)
+    found = talkers.find_sources(feats)
+    radius = 2.5 * talkers.kernel_width_s(3)
+    for bearing, _ in (NEAR, FAR):
+        expected = far_field_delays_s(bearing, 4, spacing_m)
+        dist = [np.linalg.norm(np.asarray(s.delays_s) - expected) for s in found]
+        assert min(dist) < radius, (bearing, expected, [s.delays_s for s in found])
+    tm = talkers.choose_wanted(found, feats)
+    assert tm.chosen_by == "direct"
+    assert np.linalg.norm(np.asarray(tm.sources[tm.wanted].delays_s)
+                          - far_field_delays_s(NEAR[0], 4, spacing_m)) < radius

@@ -716,6 +716,11 @@ class Processor:
         if self._spatial is not None:
             # Speech from another direction is noise here (liftmag.talkers).
             p_used = p_used * wanted_posterior(self._spatial, y_used)
+            if self._spatial.other_frames.size:
+                cfg = self.config
+                index = self._frame_index + np.arange(y.shape[0])[used]
+                centre_s = (index * cfg.hop - cfg.frame_length / 2) / cfg.sample_rate_hz
+                p_used = p_used * self._spatial.frame_weight(centre_s)[:, None]
         lifted = lift_snapshots(y_used)  # shared by the noise and the speech statistics
         if s.noise_mode == "track":
             self._noise.update(y_used, 1.0 - p_used, self._noise_forgetting**TRACK_STRIDE, lifted)
@@ -996,7 +1001,7 @@ def talker_prior(
         target = -np.angle(steer[0, 1:]) / (2 * np.pi)
     talkers = choose_wanted(find_sources(features), features, target, tuple(region_s))
     freqs = stft_config(sample_rate_hz, settings.frame_s).frequencies_hz
-    return talkers, spatial_prior(talkers, freqs)
+    return talkers, spatial_prior(talkers, freqs, features)
 
 
 def uses_take_analysis(settings: Settings) -> bool:

@@ -22,8 +22,16 @@ Method
 * **The wanted talker.** By default the most *direct and persistent* source: the highest
   median coherence (which favours the voice closest to the array, whose direct sound
   dominates its reverberation) times its share of the active frames (a steady noise source
-  can be as coherent in a dry room, but holds few frames). A bearing (with the microphone
-  spacing) or a stretch of the take where only the wanted talker speaks overrides it.
+  can be as coherent in a dry room, but holds few frames). Being the nearest, the wanted
+  talker should also be the loudest voice when it speaks: when another clearly directional
+  voice is within ``LOUDER_BY_DB`` of it (median level of their frames) the take gives no way
+  to decide, the choice is reported as undecided and every voice is kept as speech, as
+  without this analysis. A bearing (with the microphone spacing) or a stretch of the take
+  where only the wanted talker speaks overrides the rule.
+* **Frames held by another voice.** Feature frames whose delays belong to a voice learned as
+  noise, with no frame of the wanted talker within ``OTHER_FRAME_GUARD`` frames, count as
+  noise in every bin: the take's own "other voice, not ours" stretches, which a user would
+  otherwise mark as a noise region.
 * **Time-frequency weight.** With far-field steering vectors ``a_c(f)`` built from the
   sources' delays, each bin's share of power along ``a_c``,
   ``r_c = |a_c^H y|^2 / (M |y|^2)``, gives the weight of the wanted source
@@ -51,7 +59,7 @@ frequency bin-wise clustering and permutation alignment", IEEE Trans. ASLP 19(3)
 from __future__ import annotations
 
 import functools
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
@@ -66,8 +74,10 @@ ACTIVE_ABOVE_FLOOR_DB = 6.0  # frames this far above the take's quiet level coun
 MIN_PEAK = 0.1  # frames whose GCC peak is lower carry no usable direction
 MIN_SOURCE_SHARE = 0.08  # a source holds at least this share of the active frames
 MIN_OTHER_COHERENCE = 0.3  # another source is learned as noise only if this directional
-KERNEL_WIDTH_S = 2.0 * DELAY_STEP_S  # mean-shift kernel: two steps of the GCC grid
+KERNEL_WIDTH_S = 2.0 * DELAY_STEP_S  # mean-shift kernel per pair: two steps of the GCC grid
 MAX_CLUSTER_POINTS = 2000  # mean shift runs on at most this many frames (evenly strided)
+OTHER_FRAME_GUARD = 1  # frames next to a wanted-talker frame that never count as another's
+LOUDER_BY_DB = 2.0  # the wanted talker's median level lead over any voice learned as noise
 KAPPA = 60.0  # steepness of the time-frequency posterior
 MARGIN = 0.2  # lead in power share another source needs before a bin counts as noise
 
@@ -119,8 +129,8 @@ class TalkerMap:
     active_frames: int
 
     @property
-    def removed(self) -> tuple[int, ...]:
-        """Indices of the other sources that are learned as noise.
+    def rivals(self) -> tuple[int, ...]:
+        """Indices of the other sources that are clearly directional voices.
 
         Only sources whose frames are clearly directional (median GCC-PHAT peak at least
         ``MIN_OTHER_COHERENCE``) count: weaker clusters were, on our development rooms, mains
@@ -130,6 +140,12 @@ class TalkerMap:
             return ()
         return tuple(i for i, s in enumerate(self.sources)
                      if i != self.wanted and s.coherence >= MIN_OTHER_COHERENCE)
+
+    @property
+    def removed(self) -> tuple[int, ...]:
+        """Indices of the other sources that are learned as noise: the rivals, unless the
+        choice was left undecided."""
+        return () if self.chosen_by == "undecided" else self.rivals
 
     @property
     def competing(self) -> bool:
@@ -161,6 +177,10 @@ class TalkerMap:
         bearing = src.bearing_deg(spacing_m)
         if bearing is not None:
             where += f", bearing {bearing:.0f} deg"
+        if self.chosen_by == "undecided":
+            return (f"{len(self.rivals) + 1} voices from different directions at about the "
+                    "same level; no way to tell which one is wanted, so all are kept as speech "
+                    "(choose with --target-deg or --talker-region)")
         others = len(self.removed)
         how = {"direct": "the most direct and persistent voice", "bearing": "the bearing given",
                "talker region": "the talker region"}[self.chosen_by]
@@ -249,6 +269,16 @@ def _active(features: FrameFeatures) -> NDArray:
     return (features.level_db > quiet + ACTIVE_ABOVE_FLOOR_DB) & (features.peak > MIN_PEAK)
 
 
+def kernel_width_s(n_pairs: int) -> float:
+    """Mean-shift kernel width for delay vectors of ``n_pairs`` microphone pairs.
+
+    Each pair's delay carries its own estimation error, so the distance between two frames of
+    one source grows as the square root of the number of pairs; the kernel grows with it and
+    keeps the same tolerance per pair (``KERNEL_WIDTH_S`` for two microphones).
+    """
+    return KERNEL_WIDTH_S * float(np.sqrt(max(n_pairs, 1)))
+
+
 def find_sources(features: FrameFeatures) -> tuple[Source, ...]:
     """Directional sources: mean-shift modes of the active frames' delay vectors.
 
@@ -262,7 +292,7 @@ def find_sources(features: FrameFeatures) -> tuple[Source, ...]:
     stride = max(1, -(-pts.shape[0] // MAX_CLUSTER_POINTS))
     pts, peak, level = pts[::stride], features.peak[active][::stride], \
         features.level_db[active][::stride]
-    h = KERNEL_WIDTH_S
+    h = kernel_width_s(pts.shape[1])
     sq = np.sum(pts**2, axis=-1)
     # Squared distances from inner products: one N x N array (32 MB at MAX_CLUSTER_POINTS).
     d2 = np.maximum(sq[:, None] + sq[None, :] - 2.0 * pts @ pts.T, 0.0)
@@ -303,7 +333,7 @@ def choose_wanted(
     active = int(np.count_nonzero(_active(features)))
     if not sources and target_delays_s is None and not region_s:
         return TalkerMap((), None, "none", 0.0, active)
-    h = KERNEL_WIDTH_S
+    h = kernel_width_s(features.delays_s.shape[1])
     if target_delays_s is not None:
         target = np.asarray(target_delays_s, dtype=float)
         dist = [float(np.linalg.norm(np.asarray(s.delays_s) - target)) for s in sources]
@@ -337,7 +367,14 @@ def choose_wanted(
     i = int(np.argmax(score))
     ranked = np.sort(score)[::-1]
     margin = float((ranked[0] - ranked[1]) / ranked[0]) if len(sources) > 1 else 1.0
-    return TalkerMap(sources, i, "direct", margin, active)
+    chosen = TalkerMap(sources, i, "direct", margin, active)
+    # The wanted voice is the nearest, so when it is active it is also the loudest. Another
+    # clearly directional voice about as loud leaves no way to tell which one is wanted:
+    # keep both as speech rather than risk learning the wanted talker as noise.
+    rival = max((sources[j].level_db for j in chosen.rivals), default=-np.inf)
+    if rival > sources[i].level_db - LOUDER_BY_DB:
+        return TalkerMap(sources, i, "undecided", margin, active)
+    return chosen
 
 
 def steering_from_delays(delays_s: NDArray, frequencies_hz: NDArray) -> NDArray:
@@ -359,10 +396,59 @@ class SpatialPrior:
     others: NDArray
     separable: NDArray
     kappa: float = KAPPA
+    # per feature frame: another source holds it (empty: no frame-level information)
+    other_frames: NDArray = field(default_factory=lambda: np.zeros(0, bool))
+    feature_frame_s: float = FEATURE_FRAME_S
+
+    def frame_weight(self, times_s: NDArray) -> NDArray:
+        """Per engine frame centred at ``times_s``: 0 where another source holds the feature
+        frame (none of it may count as the wanted talker's speech), else 1."""
+        if not self.other_frames.size:
+            return np.ones(np.shape(times_s))
+        k = np.floor(np.asarray(times_s) / self.feature_frame_s).astype(int)
+        inside = (k >= 0) & (k < self.other_frames.size)
+        held = self.other_frames[np.clip(k, 0, self.other_frames.size - 1)] & inside
+        return np.where(held, 0.0, 1.0)
 
 
-def spatial_prior(talkers: TalkerMap, frequencies_hz: NDArray) -> SpatialPrior | None:
-    """The :class:`SpatialPrior` of a talker map; ``None`` when there is no other source."""
+def other_frames(talkers: TalkerMap, features: FrameFeatures) -> NDArray:
+    """Feature frames ``(N,)`` held by another source that is learned as noise.
+
+    A frame counts when its delays lie within 2.5 kernel widths of such a source (the radius
+    that assigns frames to sources in :func:`find_sources`), not within that of the wanted
+    talker, and no frame within ``OTHER_FRAME_GUARD`` of it is the wanted talker's. These are
+    the take's own stretches of "the other voice, not ours", the frames a user would mark as
+    a noise region, spread over the whole take.
+    """
+    n = len(features)
+    if talkers.wanted is None or not talkers.removed or n == 0:
+        return np.zeros(n, bool)
+    radius = 2.5 * kernel_width_s(features.delays_s.shape[1])
+    clear = features.peak > MIN_PEAK
+
+    def near(i: int) -> NDArray:
+        centre = np.asarray(talkers.sources[i].delays_s)
+        return np.sqrt(np.sum((features.delays_s - centre) ** 2, axis=-1)) < radius
+
+    wanted = near(talkers.wanted) & clear
+    other = np.zeros(n, bool)
+    for i in talkers.removed:
+        other |= near(i) & clear
+    guard = wanted.copy()
+    for k in range(1, OTHER_FRAME_GUARD + 1):
+        guard[k:] |= wanted[:-k]
+        guard[:-k] |= wanted[k:]
+    return other & ~guard
+
+
+def spatial_prior(
+    talkers: TalkerMap, frequencies_hz: NDArray, features: FrameFeatures | None = None
+) -> SpatialPrior | None:
+    """The :class:`SpatialPrior` of a talker map; ``None`` when there is no other source.
+
+    With the take's ``features`` the prior also marks the feature frames that another source
+    holds (:func:`other_frames`).
+    """
     if not talkers.competing:
         return None
     delays = np.array([s.delays_s for s in talkers.sources])
@@ -371,7 +457,11 @@ def spatial_prior(talkers: TalkerMap, frequencies_hz: NDArray) -> SpatialPrior |
     others = steer[list(talkers.removed)]
     m = wanted.shape[-1]
     overlap = np.abs(np.einsum("fm,cfm->cf", np.conj(wanted), others)) ** 2 / m**2
-    return SpatialPrior(wanted, others, 1.0 - overlap.max(axis=0))
+    held = np.zeros(0, bool) if features is None else other_frames(talkers, features)
+    frame_s = (float(features.times_s[1] - features.times_s[0])
+               if features is not None and len(features) > 1 else FEATURE_FRAME_S)
+    return SpatialPrior(wanted, others, 1.0 - overlap.max(axis=0), other_frames=held,
+                        feature_frame_s=frame_s)
 
 
 def wanted_posterior(prior: SpatialPrior, y: NDArray) -> NDArray:
