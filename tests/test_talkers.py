@@ -46,15 +46,15 @@ def _speech(name: str, n: int) -> np.ndarray:
     return s[np.arange(n) % s.size]
 
 
-@pytest.fixture(scope="module")
-def two_talkers():
+def _two_talker_take(n_mics: int, spacing_m: float, seed: int):
     """A 13 s take in a 0.3 s RT60 room: the near talker alone, the far one alone, then both.
 
-    Returns (mixture (2, n), near image (n,), far image (n,)) at microphone 0.
+    Returns (mixture (n_mics, n), near image (n,), far image (n,)) at microphone 0.
     """
     n = round(TAKE_S * FS)
     pos = rooms.ARRAY_CENTRE_M[:, None] + np.outer([1.0, 0.0, 0.0],
-                                                    np.array([-0.5, 0.5]) * SPACING_M)
+                                                    (np.arange(n_mics) - (n_mics - 1) / 2)
+                                                    * spacing_m)
     room = rooms.build_room([rooms.position_at(*NEAR), rooms.position_at(*FAR)], pos, FS)
     near = np.zeros(n)
     far = np.zeros(n)
@@ -68,9 +68,15 @@ def two_talkers():
     crop = slice(0, n)
     near_img = rooms.source_images(room, 0, near, crop)
     far_img = rooms.source_images(room, 1, far, crop)
-    rng = np.random.default_rng(7)
-    sensor = 1e-3 * rng.standard_normal((2, n))
+    rng = np.random.default_rng(seed)
+    sensor = 1e-3 * rng.standard_normal((n_mics, n))
     return near_img + far_img + sensor, near_img[0], far_img[0]
+
+
+@pytest.fixture(scope="module")
+def two_talkers():
+    """The two-talker take on the 8 cm pair."""
+    return _two_talker_take(2, SPACING_M, 7)
 
 
 def test_gcc_phat_finds_a_pure_delay():
@@ -281,22 +287,7 @@ def test_both_talkers_are_found_with_four_microphones():
     # three pairs, each with its own error, and both talkers must still be found at their
     # far-field time differences tau_m = -m d cos(theta) / c (pyroomacoustics geometry).
     spacing_m = 0.05
-    n = round(TAKE_S * FS)
-    pos = rooms.ARRAY_CENTRE_M[:, None] + np.outer([1.0, 0.0, 0.0],
-                                                    (np.arange(4) - 1.5) * spacing_m)
-    room = rooms.build_room([rooms.position_at(*NEAR), rooms.position_at(*FAR)], pos, FS)
-    near = np.zeros(n)
-    far = np.zeros(n)
-    a, b = (round(t * FS) for t in SOLO_NEAR_S)
-    near[a:b] = _speech("talker_a", b - a)
-    a, b = (round(t * FS) for t in SOLO_FAR_S)
-    far[a:b] = _speech("talker_b", b - a)
-    both = round(7.5 * FS)
-    near[both:] = _speech("talker_a", n - both)
-    far[both:] = _speech("talker_b", n - both)[::-1].copy()
-    x = (rooms.source_images(room, 0, near, slice(0, n))
-         + rooms.source_images(room, 1, far, slice(0, n)))
-    x += 1e-3 * np.random.default_rng(11).standard_normal(x.shape)
+    x, _, _ = _two_talker_take(4, spacing_m, 11)
     feats = talkers.take_features(iter_blocks(x, 1 << 15), FS, 4)
     found = talkers.find_sources(feats)
     radius = 2.5 * talkers.kernel_width_s(3)
