@@ -464,6 +464,19 @@ def spatial_prior(
                         feature_frame_s=frame_s)
 
 
+def _power_along(steer: NDArray, y: NDArray) -> NDArray:
+    """``|a^H y|^2`` (K, F) for steering ``a`` (F, M) and frames ``y`` (K, F, M).
+
+    One multiply-add per channel: with two to four microphones this is several times cheaper
+    than ``einsum`` over the (K, F, M) layout.
+    """
+    conj = np.conj(steer)
+    proj = y[..., 0] * conj[:, 0]
+    for m in range(1, y.shape[-1]):
+        proj += y[..., m] * conj[:, m]
+    return proj.real**2 + proj.imag**2
+
+
 def wanted_posterior(prior: SpatialPrior, y: NDArray) -> NDArray:
     """Posterior ``(K, F)`` that the wanted talker dominates each bin of frames ``y`` (K, F, M).
 
@@ -471,13 +484,18 @@ def wanted_posterior(prior: SpatialPrior, y: NDArray) -> NDArray:
     this analysis.
     """
     m = y.shape[-1]
-    norm = np.maximum(np.sum(np.abs(y) ** 2, axis=-1), 1e-300) * m
-    r_w = np.abs(np.einsum("fm,kfm->kf", np.conj(prior.wanted), y)) ** 2 / norm
-    r_o = np.abs(np.einsum("cfm,kfm->ckf", np.conj(prior.others), y)) ** 2 / norm
+    power = y[..., 0].real ** 2 + y[..., 0].imag ** 2
+    for ch in range(1, m):
+        power += y[..., ch].real ** 2 + y[..., ch].imag ** 2
+    norm = np.maximum(power, 1e-300) * m
     # Another source must hold clearly more of the bin than the wanted talker before the bin
     # counts as noise: a free-field model misses reverberation, and wanted speech counted as
     # noise would make the beamformer cancel the talker.
-    lead = np.max(r_o, axis=0) - r_w
+    lead = _power_along(prior.others[0], y)
+    for other in prior.others[1:]:
+        np.maximum(lead, _power_along(other, y), out=lead)
+    lead -= _power_along(prior.wanted, y)
+    lead /= norm
     w = 1.0 / (1.0 + np.exp(prior.kappa * (lead - MARGIN)))
     return 1.0 - prior.separable * (1.0 - w)
 
