@@ -20,7 +20,7 @@ system-deps:
 	@bash build/system-deps.sh
 
 demo: $(STAMP)
-	$(BIN)/liftmag demo
+	$(BIN)/liftmag demo --force
 
 test: $(STAMP) system-deps
 	$(BIN)/ruff check dsp plugin tests build benchmarks

@@ -38,10 +38,14 @@ def test_demo_writes_audio_model_and_report_and_improves_on_the_take(tmp_path, c
     assert scores["auto"]["stoi"] > base["stoi"] and scores["auto"]["pesq_wb"] > base["pesq_wb"]
     page = _Images()
     page.feed((out / "report.html").read_text())
-    assert len(page.sources) == 4  # spectrograms, removed, levels, patterns
+    assert len(page.sources) == 5  # spectrograms, removed, talkers, levels, patterns
     assert all(s.startswith("data:image/png;base64,") for s in page.sources)
-    # A second run refuses to overwrite the folder without --force.
+    # A second run refuses to overwrite the folder without --force, and with it replaces
+    # every file the first run wrote (the demo knows them all by name).
     assert main(["demo", "--out", str(out)]) == 2
+    written = sorted(p.name for p in out.rglob("*"))
+    assert main(["demo", "--out", str(out), "--force"]) == 0
+    assert sorted(p.name for p in out.rglob("*")) == written
 
 
 @pytest.mark.skipif(browser.CHROMIUM is None, reason="Debian chromium not installed")

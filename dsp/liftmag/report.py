@@ -26,6 +26,7 @@ __all__ = [
     "markdown_page",
     "spectrogram_png",
     "spectrogram_row_png",
+    "talker_map_png",
 ]
 
 _DPI = 80
@@ -174,6 +175,54 @@ def level_over_time_png(
         ax.plot(t_s, levels, label=label, linewidth=1.0, drawstyle="steps-mid")
     ax.set_xlabel("time (s)")
     ax.set_ylabel(f"level, {frame_s * 1e3:.0f} ms RMS (dBFS)")
+    ax.set_title(title, fontsize=10)
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+    return _png_bytes(fig)
+
+
+def talker_map_png(
+    features,
+    talkers,
+    *,
+    spacing_m: float | None = None,
+    title: str = "Who talks from where",
+    width_in: float = 10.0,
+    height_in: float = 3.6,
+) -> bytes:
+    """The take's directional sources over time (:mod:`liftmag.talkers`), as PNG bytes.
+
+    Each 64 ms feature frame with a clear direction is a dot at its time difference of
+    arrival between the first and the last microphone (ms), coloured by the source it belongs
+    to: the wanted talker, a voice learned as noise, or a source kept as speech (an undecided
+    choice, or one too diffuse to count); a line marks each source with its share of frames
+    (and bearing when the spacing is known).
+    """
+    from liftmag.talkers import frame_sources
+
+    roles = {"wanted": ("tab:green", "wanted talker"), "noise": ("tab:red", "learned as noise"),
+             "kept": ("tab:orange", "kept as speech")}
+    owner = frame_sources(talkers, features)
+    fig = _new_figure(width_in, height_in)
+    ax = fig.subplots()
+    delay_ms = features.delays_s[:, -1] * 1e3 if len(features) else np.zeros(0)
+    loose = owner < 0
+    ax.scatter(features.times_s[loose], delay_ms[loose], s=4, color="0.75",
+               label="no clear source")
+    for i, src in enumerate(talkers.sources):
+        role = "wanted" if i == talkers.wanted else "noise" if i in talkers.removed else "kept"
+        colour, name = roles[role]
+        mine = owner == i
+        bearing = src.bearing_deg(spacing_m)
+        where = f", {bearing:.0f} deg" if bearing is not None else ""
+        label = f"{name} ({src.share:.0%} of active frames{where})"
+        ax.scatter(features.times_s[mine], delay_ms[mine], s=6, color=colour, label=label)
+        ax.axhline(src.delays_s[-1] * 1e3, color=colour, linewidth=1.0, linestyle="--")
+    if talkers.sources:  # stray frames (reflections, noise) would squeeze the sources flat
+        centres = [src.delays_s[-1] * 1e3 for src in talkers.sources]
+        ax.set_ylim(min(centres) - 0.3, max(centres) + 0.3)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("time difference, last - first mic (ms)")
     ax.set_title(title, fontsize=10)
     ax.grid(True, alpha=0.3)
     ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))

@@ -411,6 +411,24 @@ class SpatialPrior:
         return np.where(held, 0.0, 1.0)
 
 
+def _distance_s(features: FrameFeatures, source: Source) -> NDArray:
+    """Distance ``(N,)`` of every frame's delay vector from ``source``'s, in seconds."""
+    return np.sqrt(np.sum((features.delays_s - np.asarray(source.delays_s)) ** 2, axis=-1))
+
+
+def frame_sources(talkers: TalkerMap, features: FrameFeatures) -> NDArray:
+    """Per feature frame, the index of the nearest source within 2.5 kernel widths (the radius
+    of :func:`find_sources`), or -1 for frames with no clear direction or no source near."""
+    n = len(features)
+    if not talkers.sources or n == 0:
+        return np.full(n, -1)
+    dist = np.stack([_distance_s(features, src) for src in talkers.sources])
+    nearest = np.argmin(dist, axis=0)
+    radius = 2.5 * kernel_width_s(features.delays_s.shape[1])
+    ok = (dist[nearest, np.arange(n)] < radius) & (features.peak > MIN_PEAK)
+    return np.where(ok, nearest, -1)
+
+
 def other_frames(talkers: TalkerMap, features: FrameFeatures) -> NDArray:
     """Feature frames ``(N,)`` held by another source that is learned as noise.
 
@@ -427,8 +445,7 @@ def other_frames(talkers: TalkerMap, features: FrameFeatures) -> NDArray:
     clear = features.peak > MIN_PEAK
 
     def near(i: int) -> NDArray:
-        centre = np.asarray(talkers.sources[i].delays_s)
-        return np.sqrt(np.sum((features.delays_s - centre) ** 2, axis=-1)) < radius
+        return _distance_s(features, talkers.sources[i]) < radius
 
     wanted = near(talkers.wanted) & clear
     other = np.zeros(n, bool)

@@ -47,7 +47,7 @@ def _demo_names() -> frozenset[str]:
     cleaned = {"mvdr.wav" if e == "mvdr" else f"cleaned-{e}.wav" for e in ESTIMATORS}
     return frozenset({
         "take.wav", "roomtone.wav", "clean-reference.wav", "noise-model.npz", "report.html",
-        "report.md", "scores.json", *cleaned,
+        "report.md", "scores.json", "cleaned-nothing-given.wav", *cleaned,
     })
 
 
@@ -207,6 +207,16 @@ def run(args: argparse.Namespace) -> int:
         fs, shade_s=[(0.0, start / fs)],
     )
     pattern_png, n_spikes = _pattern_png(model, scene, figures)
+    from liftmag import talkers
+    from liftmag.engine import iter_blocks
+
+    # The same search `process` ran for the "nothing given" row (on the file it read), drawn
+    # for the reader.
+    take_read = sf.read(take, always_2d=True)[0].T
+    features = talkers.take_features(iter_blocks(take_read, 1 << 16), fs, take_read.shape[0])
+    talker_map = talkers.choose_wanted(talkers.find_sources(features), features)
+    spacing_m = float(abs(scene.mic_positions_m[-1] - scene.mic_positions_m[0]))
+    talker_png = report.talker_map_png(features, talker_map, spacing_m=spacing_m)
     sections = [
         report.Section("The scene", (
             "An invented outdoor interview: a field recorder with two capsules 8 cm apart, the "
@@ -237,6 +247,12 @@ def run(args: argparse.Namespace) -> int:
             report.Image(removed, "removed", "What each estimator took out of capsule 1. Speech "
                          "shapes here mean speech was damaged.", alt="removed"),
         )),
+        report.Section("Who talks from where (nothing given)", (
+            report.Image(talker_png, "talkers", "Each 64 ms frame with a clear direction, at "
+                         "its time difference between the capsules: the search `process` runs "
+                         "when it is given no room tone, region or bearing, and what it kept as "
+                         "the talker.", alt="talker map"),
+        )),
         report.Section("Level over time", (
             report.Image(levels, "levels", "Short-term level; the shaded lead-in is noise only.",
                          alt="levels"),
@@ -252,8 +268,10 @@ def run(args: argparse.Namespace) -> int:
     ]
     (out / "report.html").write_text(report.html_page("liftmag demo: outdoor interview", sections))
     images = {"spectrograms": "figures/spectrograms.png", "removed": "figures/removed.png",
-              "levels": "figures/levels.png", "pattern": "figures/pattern-1khz.png"}
-    for name, png in (("spectrograms", spectrograms), ("removed", removed), ("levels", levels)):
+              "levels": "figures/levels.png", "pattern": "figures/pattern-1khz.png",
+              "talkers": "figures/talkers.png"}
+    for name, png in (("spectrograms", spectrograms), ("removed", removed), ("levels", levels),
+                      ("talkers", talker_png)):
         (out / images[name]).write_bytes(png)
     (out / "report.md").write_text(
         report.markdown_page("liftmag demo: outdoor interview", sections, images)
