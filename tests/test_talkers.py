@@ -310,3 +310,27 @@ def test_the_search_does_not_depend_on_how_the_take_is_read(two_talkers):
     whole = process_array(x, FS, chunk_samples=1 << 16)
     pieces = process_array(x, FS, chunk_samples=4099)
     np.testing.assert_allclose(pieces, whole, rtol=0, atol=1e-9 * np.max(np.abs(whole)))
+
+
+def test_process_draws_the_talker_map_when_asked(two_talkers, tmp_path, capsys):
+    # --talker-map writes a real image (PNG signature, ISO/IEC 15948) after the search; with a
+    # noise region there is no search, so it says so and writes nothing; a format matplotlib
+    # cannot write is refused before any work.
+    x, _, _ = two_talkers
+    take = tmp_path / "take.wav"
+    soundfile.write(take, x.T, FS, subtype="FLOAT")
+    figure = tmp_path / "who.png"
+    argv = ["process", str(take), "-o", str(tmp_path / "o.wav"), "--talker-map", str(figure)]
+    assert cli_main(argv) == 0
+    assert figure.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    capsys.readouterr()
+    again = ["process", str(take), "-o", str(tmp_path / "o2.wav"), "--talker-map", str(figure)]
+    assert cli_main(again) == 2  # the map exists: refused without --force, before any work
+    assert str(figure) in capsys.readouterr().err and not (tmp_path / "o2.wav").exists()
+    other = tmp_path / "none.png"
+    assert cli_main(["process", str(take), "-o", str(tmp_path / "r.wav"), "--noise-region",
+                     "0:0.4", "--talker-map", str(other)]) == 0
+    assert "no talker map written" in capsys.readouterr().err and not other.exists()
+    status = cli_main(["process", str(take), "-o", str(tmp_path / "b.wav"), "--talker-map",
+                       str(tmp_path / "map.bmp")])
+    assert status == 2 and not (tmp_path / "b.wav").exists()

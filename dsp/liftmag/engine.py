@@ -42,6 +42,7 @@ References: Gerkmann & Hendriks, IEEE TASLP 20(4), 2012; Markovich-Golan & Ganno
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import itertools
 from collections.abc import Callable
@@ -999,7 +1000,10 @@ def talker_prior(
         steer = steering_vectors(positions, settings.target_deg, np.array([1.0]), reference=0)
         # d_m = exp(-j 2 pi f tau_m) at 1 Hz gives tau_m = -angle / (2 pi).
         target = -np.angle(steer[0, 1:]) / (2 * np.pi)
-    talkers = choose_wanted(find_sources(features), features, target, tuple(region_s))
+    talkers = dataclasses.replace(
+        choose_wanted(find_sources(features), features, target, tuple(region_s)),
+        features=features,
+    )
     freqs = stft_config(sample_rate_hz, settings.frame_s).frequencies_hz
     return talkers, spatial_prior(talkers, freqs, features)
 

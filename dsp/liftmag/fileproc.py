@@ -61,13 +61,15 @@ class ProcessResult:
     mics: tuple[str, ...] = ()
     talkers: dict | None = None  # liftmag.talkers.TalkerMap.to_dict(), when the take was read
     talker_summary: str = ""
+    # The talker map itself (liftmag.talkers.TalkerMap, with its frames), for drawing; not JSON.
+    talker_map: object | None = field(default=None, compare=False, repr=False)
 
     @property
     def realtime_factor(self) -> float:
         return self.duration_s / self.elapsed_s if self.elapsed_s > 0 else float("inf")
 
     def to_dict(self) -> dict:
-        d = {k: getattr(self, k) for k in self.__dataclass_fields__}
+        d = {k: getattr(self, k) for k in self.__dataclass_fields__ if k != "talker_map"}
         d["realtime_factor"] = round(self.realtime_factor, 2)
         for k in ("inputs", "carried_chunks", "warnings", "mics"):
             d[k] = list(d[k])
@@ -335,6 +337,7 @@ def process_file(
         mics=tuple(take.tracks[i].label for i in take.mics),
         talkers=talker_map.to_dict(settings.mic_spacing_m) if talker_map else None,
         talker_summary=talker_map.describe(settings.mic_spacing_m) if talker_map else "",
+        talker_map=talker_map,
     )
 
 

@@ -26,7 +26,7 @@ __all__ = [
     "markdown_page",
     "spectrogram_png",
     "spectrogram_row_png",
-    "talker_map_png",
+    "talker_map_figure",
 ]
 
 _DPI = 80
@@ -44,10 +44,11 @@ def _new_figure(width_in: float, height_in: float):
     return fig
 
 
-def _png_bytes(fig) -> bytes:
+def _png_bytes(fig, fmt: str = "png") -> bytes:
+    """The figure as ``fmt`` bytes (png, svg or pdf)."""
     buf = io.BytesIO()
-    # No "Software" tag etc.: the bytes depend only on the picture.
-    fig.savefig(buf, format="png", metadata={"Software": None})
+    # No "Software" tag etc.: the bytes of a PNG depend only on the picture.
+    fig.savefig(buf, format=fmt, metadata={"Software": None} if fmt == "png" else None)
     return buf.getvalue()
 
 
@@ -181,16 +182,17 @@ def level_over_time_png(
     return _png_bytes(fig)
 
 
-def talker_map_png(
+def talker_map_figure(
     features,
     talkers,
     *,
     spacing_m: float | None = None,
+    fmt: str = "png",
     title: str = "Who talks from where",
     width_in: float = 10.0,
     height_in: float = 3.6,
 ) -> bytes:
-    """The take's directional sources over time (:mod:`liftmag.talkers`), as PNG bytes.
+    """The take's directional sources over time (:mod:`liftmag.talkers`), as ``fmt`` bytes.
 
     Each 64 ms feature frame with a clear direction is a dot at its time difference of
     arrival between the first and the last microphone (ms), coloured by the source it belongs
@@ -226,7 +228,7 @@ def talker_map_png(
     ax.set_title(title, fontsize=10)
     ax.grid(True, alpha=0.3)
     ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    return _png_bytes(fig)
+    return _png_bytes(fig, fmt)
 
 
 # --------------------------------------------------------------------------- pages

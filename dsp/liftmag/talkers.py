@@ -124,9 +124,11 @@ class TalkerMap:
 
     sources: tuple[Source, ...]
     wanted: int | None
-    chosen_by: str  # "direct" (default rule), "bearing", "talker region" or "none"
+    chosen_by: str  # "direct", "undecided" (default rule), "bearing", "talker region", "none"
     confidence: float  # margin of the choice in [0, 1]
     active_frames: int
+    # The frames the map was found from, for drawing it (report.talker_map_figure).
+    features: FrameFeatures | None = field(default=None, compare=False, repr=False)
 
     @property
     def rivals(self) -> tuple[int, ...]:

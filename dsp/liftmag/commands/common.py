@@ -9,7 +9,8 @@ import functools
 import json
 import signal
 import sys
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
+from pathlib import Path
 from typing import Any
 
 from liftmag.settings import ESTIMATOR_HELP, Settings, settings_fields
@@ -92,6 +93,27 @@ def parse_region(text: str) -> tuple[float, float]:
         return parse(text)
     except ValueError as exc:
         raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+# Image formats matplotlib's Agg back end writes (its savefig documentation).
+IMAGE_SUFFIXES = (".png", ".svg", ".pdf")
+
+
+def check_figure_path(path: Path, option: str, force: bool, inputs: Sequence = ()) -> None:
+    """Refuse a figure destination before any work: an extension matplotlib cannot write, an
+    input, a folder, device or FIFO, or an existing file without ``force``."""
+    from liftmag.audio_io import AudioOutputError, refuse_destination
+    from liftmag.errors import UserError
+
+    if path.suffix.lower() not in IMAGE_SUFFIXES:
+        raise UserError(
+            f"{option} {path}: the extension {path.suffix or '(none)'!r} is not an image "
+            f"format liftmag writes; use {', '.join(IMAGE_SUFFIXES)}"
+        )
+    try:
+        refuse_destination(path, inputs, force)
+    except AudioOutputError as exc:
+        raise UserError(str(exc)) from None
 
 
 def progress_bar(label: str, total: int, unit_scale: float) -> Callable[[int, int], None] | None:

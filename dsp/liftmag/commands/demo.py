@@ -216,7 +216,7 @@ def run(args: argparse.Namespace) -> int:
     features = talkers.take_features(iter_blocks(take_read, 1 << 16), fs, take_read.shape[0])
     talker_map = talkers.choose_wanted(talkers.find_sources(features), features)
     spacing_m = float(abs(scene.mic_positions_m[-1] - scene.mic_positions_m[0]))
-    talker_png = report.talker_map_png(features, talker_map, spacing_m=spacing_m)
+    talker_png = report.talker_map_figure(features, talker_map, spacing_m=spacing_m)
     sections = [
         report.Section("The scene", (
             "An invented outdoor interview: a field recorder with two capsules 8 cm apart, the "

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from liftmag.commands.common import check_figure_path
 from liftmag.errors import UserError
 
 HELP = """\
@@ -97,22 +98,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print the patterns as JSON on stdout")
 
 
-# Image formats matplotlib's Agg back end writes (its savefig documentation).
-IMAGE_SUFFIXES = (".png", ".svg", ".pdf")
-
-
 def _check_out(out: Path) -> None:
-    from liftmag.audio_io import AudioOutputError, refuse_destination
-
-    if out.suffix.lower() not in IMAGE_SUFFIXES:
-        raise UserError(
-            f"--out {out}: the extension {out.suffix or '(none)'!r} is not an image format "
-            f"liftmag writes; use {', '.join(IMAGE_SUFFIXES)}"
-        )
-    try:  # replaces an earlier figure, never a folder, FIFO or device
-        refuse_destination(out, (), force=True)
-    except AudioOutputError as exc:
-        raise UserError(str(exc)) from None
+    # Replaces an earlier figure, never a folder, FIFO or device.
+    check_figure_path(out, "--out", force=True)
 
 
 def _positions(args: argparse.Namespace) -> np.ndarray:

@@ -9,6 +9,7 @@ from pathlib import Path
 from liftmag.commands.common import (
     CAUTION,
     add_settings_arguments,
+    check_figure_path,
     parse_region,
     print_json,
     progress_bar,
@@ -50,6 +51,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
              "reported latency",
     )
     add_talker_arguments(parser)
+    parser.add_argument(
+        "--talker-map", metavar="FILE",
+        help="also draw who talks from where (.png, .svg or .pdf): each 64 ms frame's time "
+             "difference between the first and last microphone, coloured by the voice it "
+             "belongs to and what was done with it; only when the voices were searched (no "
+             "room tone or noise region, --other-voices find)",
+    )
     add_mics_argument(parser)
     add_settings_arguments(parser)
     offer_file_output_modes(parser)
@@ -108,6 +116,28 @@ def split_output_mode(output_mode: str | None) -> tuple[str | None, bool]:
     return output_mode, False
 
 
+def _write_talker_map(path: Path, result, settings) -> bool:
+    """Draw the take's talker map into ``path``, or say why there is none."""
+    from liftmag import report
+    from liftmag.audio_io import AudioOutputError, write_atomically
+    from liftmag.errors import UserError
+
+    talker_map = result.talker_map
+    if talker_map is None or talker_map.features is None:
+        print("liftmag process: warning: no talker map written: the voices are searched only "
+              "without room tone or a noise region, and with --other-voices find",
+              file=sys.stderr)
+        return False
+    data = report.talker_map_figure(talker_map.features, talker_map,
+                                    spacing_m=settings.mic_spacing_m,
+                                    fmt=path.suffix.lower().lstrip("."))
+    try:
+        write_atomically(path, data)
+    except AudioOutputError as exc:
+        raise UserError(str(exc)) from exc
+    return True
+
+
 @stoppable("process")
 def run(args: argparse.Namespace) -> int:
     from liftmag.audio_io import (
@@ -132,6 +162,11 @@ def run(args: argparse.Namespace) -> int:
         model = load_noise_model(args.noise_model) if args.noise_model else None
         out = Path(args.output)
         refuse_destination(out, args.inputs, args.force)
+        figure = Path(args.talker_map) if args.talker_map else None
+        if figure is not None:
+            if figure.resolve() == out.resolve():
+                raise UserError(f"--talker-map {figure} is the output file; give another name")
+            check_figure_path(figure, "--talker-map", args.force, args.inputs)
         result = process_file(
             args.inputs, out, settings, noise_model=model, noise_regions_s=args.noise_region,
             force=args.force, subtype=args.subtype, mics=mics, same_tracks=same_tracks,
@@ -143,10 +178,11 @@ def run(args: argparse.Namespace) -> int:
         raise UserError(f"{out} exists; add --force to replace it") from None
     except (AudioInputError, AudioOutputError, ValueError) as exc:
         raise UserError(str(exc)) from exc
+    drawn = figure is not None and _write_talker_map(figure, result, settings)
     for warning in result.warnings:
         print(f"liftmag process: warning: {warning}", file=sys.stderr)
     if args.json:
-        print_json(result.to_dict())
+        print_json({**result.to_dict(), "talker_map_file": str(figure) if drawn else None})
         return 0
     lifted = (
         f"; lift used in {100 * result.lifted_fraction:.0f} % of bins"
@@ -165,4 +201,6 @@ def run(args: argparse.Namespace) -> int:
         print(f"  lifted estimator, share of frames per band: {bands}")
     if result.talker_summary:
         print(f"  talkers: {result.talker_summary}")
+    if drawn:
+        print(f"  talker map: {figure}")
     return 0
