@@ -42,6 +42,7 @@ References: Gerkmann & Hendriks, IEEE TASLP 20(4), 2012; Markovich-Golan & Ganno
 
 from __future__ import annotations
 
+import collections
 import functools
 import itertools
 from collections.abc import Callable
@@ -375,10 +376,13 @@ class Processor:
         # estimated with statistics that have seen that much of its future.
         self.lookahead_frames = round(settings.lookahead_s / cfg.hop_s)
         self.latency_samples = cfg.latency_samples + self.lookahead_frames * cfg.hop
-        # Ring of the frames waiting for the estimators; it starts full of placeholders for
-        # the frames before the input's first, which leave as silence.
-        self._pending = np.zeros((self.lookahead_frames, cfg.n_bins, self.n_channels), complex)
-        self._pending_start = 0
+        # Queue of the frames waiting for the estimators, as the batches that brought them;
+        # it starts with placeholders for the frames before the input's first, which leave
+        # as silence (a broadcast zero: no memory).
+        self._pending: collections.deque[NDArray] = collections.deque(
+            [np.broadcast_to(np.zeros((), complex),
+                             (self.lookahead_frames, cfg.n_bins, self.n_channels))]
+        )
         self._silence_left = self.lookahead_frames
         self._tracking = True  # False once the input has ended (flushing the look-ahead)
         self._take_noise: MomentAccumulator | None = None  # whole-take sums (analysis pass)
@@ -566,24 +570,28 @@ class Processor:
     def _delay(self, y: NDArray[np.complex128]) -> tuple[int, NDArray[np.complex128]]:
         """Queue ``y`` for the look-ahead; return (silent frames, frames due for output).
 
-        A ring buffer of ``lookahead_frames`` frames: each batch copies only its own frames
-        in and the same number out, whatever the look-ahead.
+        The queue holds the batches themselves (read-only use, no copy in); the frames due
+        are a view of one batch or, where they span batches, one concatenation. A ring
+        buffer copied every frame in and out, which cost as much as the post-stage.
         """
         k_frames, size = y.shape[0], self.lookahead_frames
         silent = min(self._silence_left, k_frames)
         self._silence_left -= silent
-        if not size:
+        if not size or not k_frames:
             return 0, y
-        if k_frames >= size:  # the whole ring leaves, then the oldest of y
-            order = (self._pending_start + np.arange(size)) % size
-            due = np.concatenate([self._pending[order], y[: k_frames - size]])
-            self._pending[:] = y[k_frames - size :]
-            self._pending_start = 0
-        else:
-            slots = (self._pending_start + np.arange(k_frames)) % size
-            due = self._pending[slots]
-            self._pending[slots] = y
-            self._pending_start = (self._pending_start + k_frames) % size
+        self._pending.append(y)
+        pieces = []
+        need = k_frames
+        while need:
+            head = self._pending[0]
+            if head.shape[0] <= need:
+                pieces.append(self._pending.popleft())
+                need -= head.shape[0]
+            else:
+                pieces.append(head[:need])
+                self._pending[0] = head[need:]
+                need = 0
+        due = pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
         return silent, due[silent:]
 
     def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
