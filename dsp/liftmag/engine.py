@@ -772,12 +772,18 @@ class Processor:
 
     def _refresh(self) -> _Derived:
         s = self.settings
-        cov, lift2 = self._noise.means()
         m = self.n_channels
         f = self.config.n_bins
+        # The lifted second moment is M^2 times the covariance's size and needed only when
+        # the lifted structure is re-analysed: the estimators ask for it (lift2()).
         if self._noise.weight.max() == 0:  # nothing learned yet: unit noise
             cov = np.broadcast_to(np.eye(m), (f, m, m)).astype(complex)
-            lift2 = gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
+
+            def lift2() -> NDArray:
+                return gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
+        else:
+            cov = self._noise.covariance()
+            lift2 = self._noise.lift_mean
         chol, inv = _root_inverse(cov, s.diagonal_loading)
         fallback = np.ones((f, m), dtype=complex)
         if self._geometry_g is not None:
@@ -798,7 +804,8 @@ class Processor:
         return _Derived(inv, g, g_white, residual, lifted, mvdr)
 
     def _lifted_derived(
-        self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray, learning: bool
+        self, cov: NDArray, lift2: Callable[[], NDArray], inv: NDArray, g_white: NDArray,
+        learning: bool,
     ) -> dict:
         s = self.settings
         if learning and s.estimator in ("auto", "lifted-mv"):
@@ -806,7 +813,8 @@ class Processor:
             d, r = self.n_channels**2, 2 * self.n_channels - 1
             return {"n_spikes": np.zeros(len(g_white), dtype=int), "active": np.arange(0),
                     "n_lifted": 0, "projection": np.zeros((0, r + 1, d)),
-                    "lam": np.zeros((0, r)), "b_sq": np.zeros((0, r)), "null_energy": np.zeros(0)}
+                    "lam_t": np.zeros((r, 0)), "b_sq_t": np.zeros((r, 0)),
+                    "null_energy": np.zeros(0)}
         # The fourth-order noise structure changes slowly (it is averaged over many seconds),
         # so its costly eigen-analysis is renewed every LIFT_REFRESH_S, not at every refresh.
         epoch = self._frame_index // self._lift_refresh_frames
@@ -816,7 +824,7 @@ class Processor:
             n_eff = self._noise.effective_frames()
             d = self.n_channels**2
             if s.estimator == "lifted-mv":
-                c_white = whitened_lift_covariance(cov, lift2, inv)
+                c_white = whitened_lift_covariance(cov, lift2(), inv)
                 c_reg = shrunk_lift_covariance(c_white, n_eff)
                 n_spikes = np.zeros(len(n_eff), dtype=int)
                 c_reg = diagonally_loaded(c_reg, s.diagonal_loading)
@@ -836,7 +844,7 @@ class Processor:
                     sel = slice(None) if analysed.size == f else analysed  # no copy if all
                     previous = self._noise_cache[1] if self._noise_cache else None
                     values[sel], vectors[sel], n_spikes[sel] = spiked_lift_factors(
-                        whitened_lift_covariance(cov[sel], lift2[sel], inv[sel]),
+                        whitened_lift_covariance(cov[sel], lift2()[sel], inv[sel]),
                         n_eff[sel], s.spike_threshold,
                         mostly_structured=previous is not None and np.mean(previous > 0) > 0.5,
                     )
@@ -954,7 +962,9 @@ def lifted_mv_terms(q: NDArray, lam: NDArray, inv_sqrt: NDArray, a: NDArray) -> 
     # C^-1 a minus its part on the speech-sensitive directions, Q^T b.
     null_part = np.einsum("fji,fj->fi", inv_sqrt, sa) - np.einsum("fji,fj->fi", q, b)
     return {
-        "lam": lam, "b_sq": b**2,
+        # Bins last ((2M - 1, F), contiguous): lifted_mv_power runs once per frame, and its
+        # sums over the few directions are then row additions (half the cost).
+        "lam_t": np.ascontiguousarray(lam.T), "b_sq_t": np.ascontiguousarray((b**2).T),
         "projection": np.concatenate([b[:, :, None] * q, null_part[:, None, :]], axis=1),
         # Part of a . C^-1 a outside the speech-sensitive directions.
         "null_energy": np.maximum(np.sum(sa**2, axis=-1) - np.sum(b**2, axis=-1), 0.0),
@@ -970,11 +980,15 @@ def lifted_mv_power(
     ``a^T (C + P K)^-1 x = fixed_part + sum_j b_j c_j / (1 + P lam_j)`` with
     ``fixed_part = (C^-1 a - Q^T b) . x``, and the denominator is
     ``null_energy + sum_j b_j^2 / (1 + P lam_j)`` (see :func:`lifted_mv_structure`).
-    ``weighted_c`` is ``b * c``; the variance of ``P^`` is one over the denominator.
+    ``weighted_c`` (F, 2M - 1) is ``b * c``; the variance of ``P^`` is one over the denominator.
+    ``lf`` holds ``lam_t`` and ``b_sq_t`` bins last, (2M - 1, F) (:func:`lifted_mv_terms`);
+    ``weighted_c`` is read through its transpose, so bins-last storage serves it best.
     """
-    shrink = 1.0 / (1.0 + prior[:, None] * lf["lam"])
-    den = np.maximum(lf["null_energy"] + np.einsum("fd,fd->f", lf["b_sq"], shrink), 1e-300)
-    p_hat = (fixed_part + np.einsum("fd,fd->f", weighted_c, shrink)) / den
+    shrink = prior * lf["lam_t"]
+    shrink += 1.0
+    np.divide(1.0, shrink, out=shrink)
+    den = np.maximum(lf["null_energy"] + np.einsum("jf,jf->f", lf["b_sq_t"], shrink), 1e-300)
+    p_hat = (fixed_part + np.einsum("jf,jf->f", weighted_c.T, shrink)) / den
     # Gaussian equivalent: Var = sigma^4 + 2 P sigma^2  =>  sigma^2 = sqrt(P^2 + Var) - P.
     noise_eq = np.sqrt(prior**2 + 1.0 / den) - prior
     return p_hat, noise_eq
@@ -1070,10 +1084,12 @@ class PowerEstimator:
     frames (vectorised over frames and bins), and ``power`` once per frame with the
     decision-directed prior (the only recursive part): it returns an unbiased power ``P^``
     and its noise-equivalent power ``sigma_eq^2``, or an already-shrunk MMSE estimate with
-    ``None``. This base class is the linear MVDR + Wiener post-filter.
+    ``None``. This base class is the linear MVDR + Wiener post-filter. ``derive`` gets the
+    noise covariance ``cov`` and ``lift2()``, which computes the lifted second moment (large:
+    ask for it only when it is used).
     """
 
-    def derive(self, proc: Processor, cov: NDArray, lift2: NDArray, inv: NDArray,
+    def derive(self, proc: Processor, cov: NDArray, lift2: Callable[[], NDArray], inv: NDArray,
                g: NDArray, g_white: NDArray) -> dict:
         return {}
 
@@ -1155,6 +1171,8 @@ class LiftedMinimumVariance(PowerEstimator):
         # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
         # the last column, the part of the estimate that does not depend on the prior.
         projected = _per_bin_product(lf["projection"], centred)
+        # Stored bins last, as lifted_mv_power reads it (one copy per batch, not per frame).
+        projected = np.ascontiguousarray(np.swapaxes(projected, 1, 2)).swapaxes(1, 2)
         return projected[..., :-1], projected[..., -1], batch
 
     def power(self, prepared, k, prior):
