@@ -210,13 +210,19 @@ class MomentAccumulator:
         wd = w * decay[:, None]
         keep = forgetting**k_frames
         r = lift_snapshots(y) if lifted is None else lifted
-        weighted = r * wd[:, :, None]
-        self.lift_first *= keep
-        self.lift_first += weighted.sum(axis=0)
+        # Entries first, (D, K, F): lift_snapshots stores them so, and the weighting and
+        # the sum over frames then run on contiguous planes.
+        weighted = np.moveaxis(r, -1, 0) * wd
+        if keep != 1.0:  # no forgetting (whole-take sums): skip a pass over the sums
+            self.lift_first *= keep
+        self.lift_first += weighted.sum(axis=1).T
         if self.lift_sum is not None:
-            self.lift_sum *= keep
-            # Per bin (D x K) @ (K x D): one batched product, a little faster than einsum.
-            self.lift_sum += np.matmul(weighted.transpose(1, 2, 0), r.transpose(1, 0, 2))
+            if keep != 1.0:
+                self.lift_sum *= keep
+            # Per bin (D x K) @ (K x D): one batched product on contiguous copies, a little
+            # faster than einsum or than the product on strided views.
+            self.lift_sum += np.matmul(np.ascontiguousarray(weighted.transpose(2, 0, 1)),
+                                       np.ascontiguousarray(r.transpose(1, 0, 2)))
         self.weight = keep * self.weight + wd.sum(axis=0)
         self.weight_sq = keep**2 * self.weight_sq + (wd**2).sum(axis=0)
         self.version += 1
