@@ -813,6 +813,7 @@ class Processor:
             d, r = self.n_channels**2, 2 * self.n_channels - 1
             return {"n_spikes": np.zeros(len(g_white), dtype=int), "active": np.arange(0),
                     "n_lifted": 0, "projection": np.zeros((0, r + 1, d)),
+                    "projection_t": np.zeros((r + 1, d, 0)),
                     "lam_t": np.zeros((r, 0)), "b_sq_t": np.zeros((r, 0)),
                     "null_energy": np.zeros(0)}
         # The fourth-order noise structure changes slowly (it is averaged over many seconds),
@@ -961,11 +962,13 @@ def lifted_mv_terms(q: NDArray, lam: NDArray, inv_sqrt: NDArray, a: NDArray) -> 
     b = np.einsum("fij,fj->fi", q, a)
     # C^-1 a minus its part on the speech-sensitive directions, Q^T b.
     null_part = np.einsum("fji,fj->fi", inv_sqrt, sa) - np.einsum("fji,fj->fi", q, b)
+    projection = np.concatenate([b[:, :, None] * q, null_part[:, None, :]], axis=1)
     return {
         # Bins last ((2M - 1, F), contiguous): lifted_mv_power runs once per frame, and its
         # sums over the few directions are then row additions (half the cost).
         "lam_t": np.ascontiguousarray(lam.T), "b_sq_t": np.ascontiguousarray((b**2).T),
-        "projection": np.concatenate([b[:, :, None] * q, null_part[:, None, :]], axis=1),
+        "projection": projection,
+        "projection_t": np.ascontiguousarray(np.moveaxis(projection, 0, -1)),  # (2M, D, F)
         # Part of a . C^-1 a outside the speech-sensitive directions.
         "null_energy": np.maximum(np.sum(sa**2, axis=-1) - np.sum(b**2, axis=-1), 0.0),
     }
@@ -1167,12 +1170,25 @@ class LiftedMinimumVariance(PowerEstimator):
     def prepare(self, proc, batch):
         lf = batch.der.lifted
         active = lf["active"]  # bins where the lift is used
-        centred = lift_snapshots(batch.yw[:, active]) - rho(np.eye(batch.y.shape[-1]))
+        m = batch.y.shape[-1]
+        centred = lift_snapshots(batch.yw[:, active])
+        centred[..., :m] -= 1.0  # minus rho(I), whose other entries are zero
         # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
         # the last column, the part of the estimate that does not depend on the prior.
-        projected = _per_bin_product(lf["projection"], centred)
-        # Stored bins last, as lifted_mv_power reads it (one copy per batch, not per frame).
-        projected = np.ascontiguousarray(np.swapaxes(projected, 1, 2)).swapaxes(1, 2)
+        # Both are stored bins last, as lifted_mv_power reads them.
+        if m == 2:  # 16 multiply-adds on contiguous planes: 5x cheaper than the product
+            planes = np.moveaxis(centred, -1, 0)
+            weights = lf["projection_t"]
+            projected = np.empty((planes.shape[1], weights.shape[0], planes.shape[2]))
+            for i in range(weights.shape[0]):
+                row = projected[:, i]
+                np.multiply(weights[i, 0], planes[0], out=row)
+                for j in range(1, weights.shape[1]):
+                    row += weights[i, j] * planes[j]
+            projected = projected.swapaxes(1, 2)
+        else:  # one batched product, then one copy per batch (not per frame)
+            projected = _per_bin_product(lf["projection"], centred)
+            projected = np.ascontiguousarray(np.swapaxes(projected, 1, 2)).swapaxes(1, 2)
         return projected[..., :-1], projected[..., -1], batch
 
     def power(self, prepared, k, prior):
