@@ -438,6 +438,11 @@ class Processor:
         self._geometry_g, self._null_w = self._geometry()
         self._estimator = ESTIMATOR_OBJECTS.get(settings.estimator, LinearWiener())
         self._derived: _Derived | None = None
+        # (covariance, root, inverse root) of the noise statistics _whitener_owner at
+        # _whitener_key = (their version, the loading)
+        self._whitener: tuple = ()
+        self._whitener_owner: MomentAccumulator | None = None
+        self._whitener_key: tuple = ()
         self._noise_cache_key: tuple | None = None
         self._noise_cache_version = -1
         self._noise_epoch = -1
@@ -802,9 +807,18 @@ class Processor:
             def lift2() -> NDArray:
                 return gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
         else:
-            cov = self._noise.covariance()
             lift2 = self._noise.lift_mean
-        chol, inv = _root_inverse(cov, s.diagonal_loading)
+        # A held noise model does not change between refreshes: its covariance and whitener
+        # (an eigendecomposition per bin for M > 2) are kept until the statistics change.
+        key = (self._noise.version, s.diagonal_loading)
+        if self._whitener_owner is not self._noise or self._whitener_key != key:
+            if self._noise.weight.max() != 0:
+                cov = self._noise.covariance()
+            self._whitener = (cov, *_root_inverse(cov, s.diagonal_loading))
+            for shared in self._whitener:  # kept across refreshes: nobody may write to them
+                shared.setflags(write=False)
+            self._whitener_owner, self._whitener_key = self._noise, key
+        cov, chol, inv = self._whitener
         fallback = np.ones((f, m), dtype=complex)
         if self._geometry_g is not None:
             g = self._geometry_g
