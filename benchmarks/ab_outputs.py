@@ -108,15 +108,11 @@ def main() -> int:
                         help="also show how far a 1e-15 change of the whitener moves REV")
     args = parser.parse_args()
     sys.path.insert(0, str(HERE))
-    from ab_engine import extract
+    from ab_engine import both_sides
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp_path = Path(tmp)
-        (tmp_path / "old").mkdir()
-        old_root = extract(args.revision, tmp_path / "old")
-        new_root = tmp_path / "new"
-        new_root.mkdir()
-        (new_root / "liftmag").symlink_to(REPO / "dsp" / "liftmag")
+        old_root, new_root = both_sides(args.revision, tmp_path)
         data = tmp_path / "data.npz"
         render(args.seconds, data)
         old = run(old_root, data, tmp_path / "old.npz", "plain")
