@@ -42,9 +42,9 @@ References: Gerkmann & Hendriks, IEEE TASLP 20(4), 2012; Markovich-Golan & Ganno
 
 from __future__ import annotations
 
-import collections
 import functools
 import itertools
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -410,7 +410,7 @@ class Processor:
         # Queue of the frames waiting for the estimators, as the batches that brought them;
         # it starts with placeholders for the frames before the input's first, which leave
         # as silence (a broadcast zero: no memory).
-        self._pending: collections.deque[NDArray] = collections.deque(
+        self._pending: deque[NDArray] = deque(
             [np.broadcast_to(np.zeros((), complex),
                              (self.lookahead_frames, cfg.n_bins, self.n_channels))]
         )
