@@ -69,6 +69,16 @@ def extract(revision: str, into: Path) -> Path:
     return into
 
 
+def both_sides(revision: str, tmp_path: Path) -> tuple[Path, Path]:
+    """Import roots under ``tmp_path``: ``revision``'s package, and the working tree's."""
+    (tmp_path / "old").mkdir()
+    old = extract(revision, tmp_path / "old")
+    new = tmp_path / "new"
+    new.mkdir()
+    (new / "liftmag").symlink_to(REPO / "dsp" / "liftmag")
+    return old, new
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -85,11 +95,7 @@ def main() -> int:
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp_path = Path(tmp)
-        (tmp_path / "old").mkdir()
-        old = extract(args.revision, tmp_path / "old")
-        new = tmp_path / "new"
-        new.mkdir()
-        (new / "liftmag").symlink_to(REPO / "dsp" / "liftmag")
+        old, new = both_sides(args.revision, tmp_path)
         print(f"CPU time of process_array, {args.seconds:g} s at 48 kHz, {args.noise}, "
               f"{args.estimator}; best of {args.rounds} interleaved rounds")
         print(f"| mics | {args.revision} | working tree | speed-up |")

@@ -45,6 +45,7 @@ from __future__ import annotations
 import dataclasses
 import functools
 import itertools
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -189,6 +190,37 @@ def _presence_smoothing_matrix(n_frames: int) -> tuple[NDArray, NDArray]:
     lag = k[:, None] - k[None, :]
     gains = np.where(lag >= 0, 0.1 * 0.9 ** np.maximum(lag, 0), 0.0)
     return gains, 0.9 ** (k + 1.0)
+
+
+def _weighted_sum(h: NDArray, y: NDArray) -> NDArray:
+    """``sum_i h[f, i] y[k, f, i]`` for weights (F, M) and frames (K, F, M): (K, F).
+
+    One multiply-add per channel on (K, F) slices, which lie contiguous in bins: 3-4x
+    cheaper than the same einsum (measured at 48 kHz, M = 2 and 4).
+    """
+    out = h[:, 0] * y[..., 0]
+    for i in range(1, h.shape[-1]):
+        out += h[:, i] * y[..., i]
+    return out
+
+
+def _per_bin_product(a: NDArray, y: NDArray) -> NDArray:
+    """``out[k, f, i] = sum_j a[f, i, j] y[k, f, j]`` for per-bin matrices (F, I, J) and
+    frames (K, F, J): (K, F, I).
+
+    Two channels: one multiply-add per entry on (K, F) slices (3.5x cheaper than the einsum);
+    more: one batched matrix product over bins (1.8x cheaper than the einsum at M = 4).
+    """
+    n_out, n_in = a.shape[-2:]
+    if n_out * n_in > 4:
+        return np.matmul(a, y.transpose(1, 2, 0)).transpose(2, 0, 1)
+    out = np.empty((y.shape[0], n_out, y.shape[1]), dtype=np.result_type(a, y))
+    for i in range(n_out):
+        row = out[:, i]
+        np.multiply(a[:, i, 0], y[..., 0], out=row)
+        for j in range(1, n_in):
+            row += a[:, i, j] * y[..., j]
+    return np.swapaxes(out, 1, 2)
 
 
 def _root_inverse(phi: NDArray, loading: float) -> tuple[NDArray, NDArray]:
@@ -376,10 +408,13 @@ class Processor:
         # estimated with statistics that have seen that much of its future.
         self.lookahead_frames = round(settings.lookahead_s / cfg.hop_s)
         self.latency_samples = cfg.latency_samples + self.lookahead_frames * cfg.hop
-        # Ring of the frames waiting for the estimators; it starts full of placeholders for
-        # the frames before the input's first, which leave as silence.
-        self._pending = np.zeros((self.lookahead_frames, cfg.n_bins, self.n_channels), complex)
-        self._pending_start = 0
+        # Queue of the frames waiting for the estimators, as the batches that brought them;
+        # it starts with placeholders for the frames before the input's first, which leave
+        # as silence (a broadcast zero: no memory).
+        self._pending: deque[NDArray] = deque(
+            [np.broadcast_to(np.zeros((), complex),
+                             (self.lookahead_frames, cfg.n_bins, self.n_channels))]
+        )
         self._silence_left = self.lookahead_frames
         self._tracking = True  # False once the input has ended (flushing the look-ahead)
         self._take_noise: MomentAccumulator | None = None  # whole-take sums (analysis pass)
@@ -404,6 +439,11 @@ class Processor:
         self._geometry_g, self._null_w = self._geometry()
         self._estimator = ESTIMATOR_OBJECTS.get(settings.estimator, LinearWiener())
         self._derived: _Derived | None = None
+        # (covariance, root, inverse root) of the noise statistics _whitener_owner at
+        # _whitener_key = (their version, the loading)
+        self._whitener: tuple = ()
+        self._whitener_owner: MomentAccumulator | None = None
+        self._whitener_key: tuple = ()
         self._noise_cache_key: tuple | None = None
         self._noise_cache_version = -1
         self._noise_epoch = -1
@@ -559,7 +599,7 @@ class Processor:
             self._derived = self._refresh()
         der = self._derived
         if not learning and self._tracking:
-            z = np.einsum("fi,kfi->kf", np.conj(der.mvdr), y)
+            z = _weighted_sum(np.conj(der.mvdr), y)
             self._track(y, np.abs(z) ** 2 / np.maximum(der.residual, 1e-300))
         self._frame_index += y.shape[0]
         return der
@@ -567,24 +607,28 @@ class Processor:
     def _delay(self, y: NDArray[np.complex128]) -> tuple[int, NDArray[np.complex128]]:
         """Queue ``y`` for the look-ahead; return (silent frames, frames due for output).
 
-        A ring buffer of ``lookahead_frames`` frames: each batch copies only its own frames
-        in and the same number out, whatever the look-ahead.
+        The queue holds the batches themselves (read-only use, no copy in); the frames due
+        are a view of one batch or, where they span batches, one concatenation. A ring
+        buffer copied every frame in and out, which cost as much as the post-stage.
         """
         k_frames, size = y.shape[0], self.lookahead_frames
         silent = min(self._silence_left, k_frames)
         self._silence_left -= silent
-        if not size:
+        if not size or not k_frames:
             return 0, y
-        if k_frames >= size:  # the whole ring leaves, then the oldest of y
-            order = (self._pending_start + np.arange(size)) % size
-            due = np.concatenate([self._pending[order], y[: k_frames - size]])
-            self._pending[:] = y[k_frames - size :]
-            self._pending_start = 0
-        else:
-            slots = (self._pending_start + np.arange(k_frames)) % size
-            due = self._pending[slots]
-            self._pending[slots] = y
-            self._pending_start = (self._pending_start + k_frames) % size
+        self._pending.append(y)
+        pieces = []
+        need = k_frames
+        while need:
+            head = self._pending[0]
+            if head.shape[0] <= need:
+                pieces.append(self._pending.popleft())
+                need -= head.shape[0]
+            else:
+                pieces.append(head[:need])
+                self._pending[0] = head[need:]
+                need = 0
+        due = pieces[0] if len(pieces) == 1 else np.concatenate(pieces)
         return silent, due[silent:]
 
     def _process_batch(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
@@ -610,8 +654,8 @@ class Processor:
         if der is None or k_frames == 0:  # passthrough, or nothing due yet
             return self._output(y, y[:, :, s.reference_channel], None)
 
-        yw = np.einsum("fij,kfj->kfi", der.whitener, y, optimize=True)
-        z = np.einsum("fi,kfi->kf", np.conj(der.g_white), yw) * der.residual
+        yw = _per_bin_product(der.whitener, y)
+        z = _weighted_sum(np.conj(der.g_white), yw) * der.residual
         mvdr_power = np.abs(z) ** 2
         p_lin = mvdr_power - der.residual
         self.report.bin_frames += p_lin.size
@@ -636,9 +680,10 @@ class Processor:
         prior_floor = 10 ** (MIN_PRIOR_SNR_DB / 10) * der.residual
         for k in range(k_frames):  # the decision-directed prior is recursive in time
             carried = s.smoothing * self._prev_amp_sq
-            prior = np.maximum(carried + fresh[k], prior_floor)
+            prior = carried + fresh[k]
+            np.maximum(prior, prior_floor, out=prior)
             p_hat, noise_eq = estimator.power(prepared, k, prior)
-            amp[k] = self._post_stage(p_hat, noise_eq, carried)
+            self._post_stage(p_hat, noise_eq, carried, out=amp[k])
 
         abs_ref = np.abs(y_ref)
         abs_phase = np.sqrt(mvdr_power) if phase_ref is z else np.abs(phase_ref)
@@ -676,24 +721,35 @@ class Processor:
             return (y_ref - cleaned)[:, None, :]
         return cleaned[:, None, :]
 
-    def _post_stage(self, p_hat: NDArray, noise_eq: NDArray | None, carried: NDArray) -> NDArray:
+    def _post_stage(
+        self, p_hat: NDArray, noise_eq: NDArray | None, carried: NDArray,
+        out: NDArray | None = None,
+    ) -> NDArray:
         """Shared post-stage: decision-directed prior, Wiener gain, output amplitude.
 
         ``carried`` is the previous frame's share of the prior, ``smoothing * A^2_(k-1)``.
+        It runs once per frame, so it works in place (the same operations in the same order
+        as the plain expressions, with fewer temporaries).
         """
         s = self.settings
         if noise_eq is None:  # MMSE estimators are already shrunk
             amp_sq = np.maximum(p_hat, 0.0)
         else:
-            lam = np.maximum(
-                carried + (1 - s.smoothing) * np.maximum(p_hat, 0.0),
-                10 ** (MIN_PRIOR_SNR_DB / 10) * noise_eq,
-            )
-            gain = lam / np.maximum(lam + noise_eq, 1e-300)
+            # lam = max(carried + (1 - smoothing) max(P^, 0), floor sigma^2)
+            lam = np.maximum(p_hat, 0.0)
+            lam *= 1 - s.smoothing
+            lam += carried
+            np.maximum(lam, 10 ** (MIN_PRIOR_SNR_DB / 10) * noise_eq, out=lam)
+            # G = lam / (lam + sigma^2)
+            gain = lam + noise_eq
+            np.maximum(gain, 1e-300, out=gain)
+            np.divide(lam, gain, out=gain)
             # Wiener output power G^2 (P^ + sigma^2) = s P^ + lambda (sqrt(s) - s), s = G^2.
-            amp_sq = gain**2 * np.maximum(p_hat + noise_eq, 0.0)
+            amp_sq = p_hat + noise_eq
+            np.maximum(amp_sq, 0.0, out=amp_sq)
+            amp_sq *= np.square(gain, out=gain)
         self._prev_amp_sq = amp_sq
-        return np.sqrt(amp_sq)
+        return np.sqrt(amp_sq, out=out)
 
     def _track(self, y: NDArray, gamma: NDArray) -> None:
         """Update noise and speech statistics from frames ``y`` (K, F, M).
@@ -703,7 +759,15 @@ class Processor:
         """
         s = self.settings
         xi = 10 ** (SPEECH_PRIOR_SNR_DB / 10)
-        spp = 1.0 / (1.0 + (1.0 + xi) * np.exp(-np.minimum(gamma * xi / (1.0 + xi), 700.0)))
+        # spp = 1 / (1 + (1 + xi) exp(-min(gamma xi / (1 + xi), 700))), in place.
+        spp = gamma * xi
+        spp /= 1.0 + xi
+        np.minimum(spp, 700.0, out=spp)
+        np.negative(spp, out=spp)
+        np.exp(spp, out=spp)
+        spp *= 1.0 + xi
+        spp += 1.0
+        np.divide(1.0, spp, out=spp)
         smooth = _smooth_presence(spp, self._spp_smooth)
         self._spp_smooth = smooth[-1]
         # Frames overlap by 75 %, so neighbours carry nearly the same information: the running
@@ -739,13 +803,28 @@ class Processor:
 
     def _refresh(self) -> _Derived:
         s = self.settings
-        cov, lift2 = self._noise.means()
         m = self.n_channels
         f = self.config.n_bins
+        # The lifted second moment is M^2 times the covariance's size and needed only when
+        # the lifted structure is re-analysed: the estimators ask for it (lift2()).
         if self._noise.weight.max() == 0:  # nothing learned yet: unit noise
             cov = np.broadcast_to(np.eye(m), (f, m, m)).astype(complex)
-            lift2 = gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
-        chol, inv = _root_inverse(cov, s.diagonal_loading)
+
+            def lift2() -> NDArray:
+                return gaussian_lift_covariance(cov) + rho(cov)[:, :, None] * rho(cov)[:, None, :]
+        else:
+            lift2 = self._noise.lift_mean
+        # A held noise model does not change between refreshes: its covariance and whitener
+        # (an eigendecomposition per bin for M > 2) are kept until the statistics change.
+        key = (self._noise.version, s.diagonal_loading)
+        if self._whitener_owner is not self._noise or self._whitener_key != key:
+            if self._noise.weight.max() != 0:
+                cov = self._noise.covariance()
+            self._whitener = (cov, *_root_inverse(cov, s.diagonal_loading))
+            for shared in self._whitener:  # kept across refreshes: nobody may write to them
+                shared.setflags(write=False)
+            self._whitener_owner, self._whitener_key = self._noise, key
+        cov, chol, inv = self._whitener
         fallback = np.ones((f, m), dtype=complex)
         if self._geometry_g is not None:
             g = self._geometry_g
@@ -765,7 +844,8 @@ class Processor:
         return _Derived(inv, g, g_white, residual, lifted, mvdr)
 
     def _lifted_derived(
-        self, cov: NDArray, lift2: NDArray, inv: NDArray, g_white: NDArray, learning: bool
+        self, cov: NDArray, lift2: Callable[[], NDArray], inv: NDArray, g_white: NDArray,
+        learning: bool,
     ) -> dict:
         s = self.settings
         if learning and s.estimator in ("auto", "lifted-mv"):
@@ -773,7 +853,9 @@ class Processor:
             d, r = self.n_channels**2, 2 * self.n_channels - 1
             return {"n_spikes": np.zeros(len(g_white), dtype=int), "active": np.arange(0),
                     "n_lifted": 0, "projection": np.zeros((0, r + 1, d)),
-                    "lam": np.zeros((0, r)), "b_sq": np.zeros((0, r)), "null_energy": np.zeros(0)}
+                    "projection_t": np.zeros((r + 1, d, 0)),
+                    "lam_t": np.zeros((r, 0)), "b_sq_t": np.zeros((r, 0)),
+                    "null_energy": np.zeros(0)}
         # The fourth-order noise structure changes slowly (it is averaged over many seconds),
         # so its costly eigen-analysis is renewed every LIFT_REFRESH_S, not at every refresh.
         epoch = self._frame_index // self._lift_refresh_frames
@@ -783,7 +865,7 @@ class Processor:
             n_eff = self._noise.effective_frames()
             d = self.n_channels**2
             if s.estimator == "lifted-mv":
-                c_white = whitened_lift_covariance(cov, lift2, inv)
+                c_white = whitened_lift_covariance(cov, lift2(), inv)
                 c_reg = shrunk_lift_covariance(c_white, n_eff)
                 n_spikes = np.zeros(len(n_eff), dtype=int)
                 c_reg = diagonally_loaded(c_reg, s.diagonal_loading)
@@ -803,7 +885,7 @@ class Processor:
                     sel = slice(None) if analysed.size == f else analysed  # no copy if all
                     previous = self._noise_cache[1] if self._noise_cache else None
                     values[sel], vectors[sel], n_spikes[sel] = spiked_lift_factors(
-                        whitened_lift_covariance(cov[sel], lift2[sel], inv[sel]),
+                        whitened_lift_covariance(cov[sel], lift2()[sel], inv[sel]),
                         n_eff[sel], s.spike_threshold,
                         mostly_structured=previous is not None and np.mean(previous > 0) > 0.5,
                     )
@@ -920,9 +1002,13 @@ def lifted_mv_terms(q: NDArray, lam: NDArray, inv_sqrt: NDArray, a: NDArray) -> 
     b = np.einsum("fij,fj->fi", q, a)
     # C^-1 a minus its part on the speech-sensitive directions, Q^T b.
     null_part = np.einsum("fji,fj->fi", inv_sqrt, sa) - np.einsum("fji,fj->fi", q, b)
+    projection = np.concatenate([b[:, :, None] * q, null_part[:, None, :]], axis=1)
     return {
-        "lam": lam, "b_sq": b**2,
-        "projection": np.concatenate([b[:, :, None] * q, null_part[:, None, :]], axis=1),
+        # Bins last ((2M - 1, F), contiguous): lifted_mv_power runs once per frame, and its
+        # sums over the few directions are then row additions (half the cost).
+        "lam_t": np.ascontiguousarray(lam.T), "b_sq_t": np.ascontiguousarray((b**2).T),
+        "projection": projection,
+        "projection_t": np.ascontiguousarray(np.moveaxis(projection, 0, -1)),  # (2M, D, F)
         # Part of a . C^-1 a outside the speech-sensitive directions.
         "null_energy": np.maximum(np.sum(sa**2, axis=-1) - np.sum(b**2, axis=-1), 0.0),
     }
@@ -937,11 +1023,15 @@ def lifted_mv_power(
     ``a^T (C + P K)^-1 x = fixed_part + sum_j b_j c_j / (1 + P lam_j)`` with
     ``fixed_part = (C^-1 a - Q^T b) . x``, and the denominator is
     ``null_energy + sum_j b_j^2 / (1 + P lam_j)`` (see :func:`lifted_mv_structure`).
-    ``weighted_c`` is ``b * c``; the variance of ``P^`` is one over the denominator.
+    ``weighted_c`` (F, 2M - 1) is ``b * c``; the variance of ``P^`` is one over the denominator.
+    ``lf`` holds ``lam_t`` and ``b_sq_t`` bins last, (2M - 1, F) (:func:`lifted_mv_terms`);
+    ``weighted_c`` is read through its transpose, so bins-last storage serves it best.
     """
-    shrink = 1.0 / (1.0 + prior[:, None] * lf["lam"])
-    den = np.maximum(lf["null_energy"] + np.einsum("fd,fd->f", lf["b_sq"], shrink), 1e-300)
-    p_hat = (fixed_part + np.einsum("fd,fd->f", weighted_c, shrink)) / den
+    shrink = prior * lf["lam_t"]
+    shrink += 1.0
+    np.divide(1.0, shrink, out=shrink)
+    den = np.maximum(lf["null_energy"] + np.einsum("jf,jf->f", lf["b_sq_t"], shrink), 1e-300)
+    p_hat = (fixed_part + np.einsum("jf,jf->f", weighted_c.T, shrink)) / den
     # Gaussian equivalent: Var = sigma^4 + 2 P sigma^2  =>  sigma^2 = sqrt(P^2 + Var) - P.
     noise_eq = np.sqrt(prior**2 + 1.0 / den) - prior
     return p_hat, noise_eq
@@ -1040,10 +1130,12 @@ class PowerEstimator:
     frames (vectorised over frames and bins), and ``power`` once per frame with the
     decision-directed prior (the only recursive part): it returns an unbiased power ``P^``
     and its noise-equivalent power ``sigma_eq^2``, or an already-shrunk MMSE estimate with
-    ``None``. This base class is the linear MVDR + Wiener post-filter.
+    ``None``. This base class is the linear MVDR + Wiener post-filter. ``derive`` gets the
+    noise covariance ``cov`` and ``lift2()``, which computes the lifted second moment (large:
+    ask for it only when it is used).
     """
 
-    def derive(self, proc: Processor, cov: NDArray, lift2: NDArray, inv: NDArray,
+    def derive(self, proc: Processor, cov: NDArray, lift2: Callable[[], NDArray], inv: NDArray,
                g: NDArray, g_white: NDArray) -> dict:
         return {}
 
@@ -1121,10 +1213,25 @@ class LiftedMinimumVariance(PowerEstimator):
     def prepare(self, proc, batch):
         lf = batch.der.lifted
         active = lf["active"]  # bins where the lift is used
-        centred = lift_snapshots(batch.yw[:, active]) - rho(np.eye(batch.y.shape[-1]))
+        m = batch.y.shape[-1]
+        centred = lift_snapshots(batch.yw[:, active])
+        centred[..., :m] -= 1.0  # minus rho(I), whose other entries are zero
         # One projection gives b_j c_j on the 2M - 1 speech-sensitive directions and, in
         # the last column, the part of the estimate that does not depend on the prior.
-        projected = np.einsum("fij,kfj->kfi", lf["projection"], centred, optimize=True)
+        # Both are stored bins last, as lifted_mv_power reads them.
+        if m == 2:  # 16 multiply-adds on contiguous planes: 5x cheaper than the product
+            planes = np.moveaxis(centred, -1, 0)
+            weights = lf["projection_t"]
+            projected = np.empty((planes.shape[1], weights.shape[0], planes.shape[2]))
+            for i in range(weights.shape[0]):
+                row = projected[:, i]
+                np.multiply(weights[i, 0], planes[0], out=row)
+                for j in range(1, weights.shape[1]):
+                    row += weights[i, j] * planes[j]
+            projected = projected.swapaxes(1, 2)
+        else:  # one batched product, then one copy per batch (not per frame)
+            projected = _per_bin_product(lf["projection"], centred)
+            projected = np.ascontiguousarray(np.swapaxes(projected, 1, 2)).swapaxes(1, 2)
         return projected[..., :-1], projected[..., -1], batch
 
     def power(self, prepared, k, prior):

@@ -86,19 +86,20 @@ def lift_snapshots(y: ArrayLike) -> NDArray[np.float64]:
     m = y.shape[-1]
     i, j = _pairs(m)
     n_pairs = len(i)
-    out = np.empty((*y.shape[:-1], m * m))
-    # One channel or pair at a time on strided views: gathering all pairs at once with fancy
-    # indexing costs a (..., pairs) complex temporary and runs 1.4-1.5x slower (M = 2, 4).
-    re, im = y.real, y.imag
-    for k in range(m):
-        power = out[..., k]
-        np.multiply(re[..., k], re[..., k], out=power)
-        power += im[..., k] ** 2
+    # Written one lifted entry at a time into contiguous planes and returned as a view with
+    # the entries last: writing the entries interleaved (stride M^2) cost 2.5-4x more at
+    # M = 4. Gathering all pairs at once with fancy indexing costs a (..., pairs) complex
+    # temporary and runs 1.4-1.5x slower (M = 2, 4).
+    planes = np.empty((m * m, *y.shape[:-1]))
+    for k in range(m):  # planes[k, ...]: a view even for one snapshot
+        channel = y[..., k]
+        np.multiply(channel.real, channel.real, out=planes[k, ...])
+        planes[k, ...] += channel.imag**2
     for p, (a, b) in enumerate(zip(i, j, strict=True)):
         cross = y[..., a] * np.conj(y[..., b])
-        np.multiply(cross.real, SQRT2, out=out[..., m + p])
-        np.multiply(cross.imag, SQRT2, out=out[..., m + n_pairs + p])
-    return out
+        np.multiply(cross.real, SQRT2, out=planes[m + p, ...])
+        np.multiply(cross.imag, SQRT2, out=planes[m + n_pairs + p, ...])
+    return np.moveaxis(planes, 0, -1)
 
 
 @cache

@@ -210,13 +210,19 @@ class MomentAccumulator:
         wd = w * decay[:, None]
         keep = forgetting**k_frames
         r = lift_snapshots(y) if lifted is None else lifted
-        weighted = r * wd[:, :, None]
-        self.lift_first *= keep
-        self.lift_first += weighted.sum(axis=0)
+        # Entries first, (D, K, F): lift_snapshots stores them so, and the weighting and
+        # the sum over frames then run on contiguous planes.
+        weighted = np.moveaxis(r, -1, 0) * wd
+        if keep != 1.0:  # no forgetting (whole-take sums): skip a pass over the sums
+            self.lift_first *= keep
+        self.lift_first += weighted.sum(axis=1).T
         if self.lift_sum is not None:
-            self.lift_sum *= keep
-            # Per bin (D x K) @ (K x D): one batched product, a little faster than einsum.
-            self.lift_sum += np.matmul(weighted.transpose(1, 2, 0), r.transpose(1, 0, 2))
+            if keep != 1.0:
+                self.lift_sum *= keep
+            # Per bin (D x K) @ (K x D): one batched product on contiguous copies, a little
+            # faster than einsum or than the product on strided views.
+            self.lift_sum += np.matmul(np.ascontiguousarray(weighted.transpose(2, 0, 1)),
+                                       np.ascontiguousarray(r.transpose(1, 0, 2)))
         self.weight = keep * self.weight + wd.sum(axis=0)
         self.weight_sq = keep**2 * self.weight_sq + (wd**2).sum(axis=0)
         self.version += 1
@@ -249,16 +255,25 @@ class MomentAccumulator:
         self.version += 1
 
     def means(self) -> tuple[NDArray[np.complex128], NDArray[np.float64] | None]:
-        first, total, weight = self.lift_first, self.lift_sum, self.weight
-        if self.prior is not None:
-            first = first + self.prior[0]
-            weight = weight + self.prior[2]
-            if total is not None and self.prior[1] is not None:
-                total = total + self.prior[1]
-        w = np.maximum(weight, 1e-300)
-        cov = unrho(first / w[:, None])
-        lift = None if total is None else total / w[:, None, None]
-        return cov, lift
+        return self.covariance(), self.lift_mean()
+
+    def covariance(self) -> NDArray[np.complex128]:
+        """The mean ``E[v v^H]`` (F, M, M), the prior included."""
+        first = self.lift_first if self.prior is None else self.lift_first + self.prior[0]
+        return unrho(first / np.maximum(self.total_weight(), 1e-300)[:, None])
+
+    def lift_mean(self) -> NDArray[np.float64] | None:
+        """The mean ``E[rho rho^T]`` (F, D, D), the prior included; ``None`` if not kept.
+
+        Apart from :meth:`covariance` because it is ``M^2`` times larger: the engine needs it
+        only when it re-analyses the lifted noise structure.
+        """
+        total = self.lift_sum
+        if total is None:
+            return None
+        if self.prior is not None and self.prior[1] is not None:
+            total = total + self.prior[1]
+        return total / np.maximum(self.total_weight(), 1e-300)[:, None, None]
 
     def total_weight(self) -> NDArray[np.float64]:
         """Weight behind :meth:`means`, the prior included."""

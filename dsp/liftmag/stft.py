@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
+from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import NDArray
 from scipy.signal import ShortTimeFFT
 from scipy.signal.windows import hann
@@ -104,8 +105,9 @@ class StreamingStft:
 
     def __init__(self, config: StftConfig, n_channels: int, n_output_channels: int) -> None:
         self.config = config
-        self._sft = config.transform()
-        self._dual = self._sft.dual_win
+        sft = config.transform()
+        self._win = sft.win
+        self._dual = sft.dual_win
         length, hop = config.frame_length, config.hop
         # Input history: the last L - hop samples before the current hop plus the pending ones.
         self._in = np.zeros((n_channels, length - hop))
@@ -119,9 +121,13 @@ class StreamingStft:
         if n_frames <= 0:
             self._in = buffered
             return np.zeros((0, block.shape[0], self.config.n_bins), dtype=complex)
-        spectra = self._sft.stft(buffered, p0=0, p1=n_frames, k_offset=length // 2)
+        # Frame k is buffered[k hop : k hop + L], what ShortTimeFFT.stft gives with
+        # k_offset = L // 2; framing by strides and one rfft over all frames and channels
+        # gives the same numbers at half the cost of its per-frame transforms.
+        frames = sliding_window_view(buffered, length, axis=1)[:, : n_frames * hop : hop]
+        spectra = scipy.fft.rfft(frames * self._win, axis=-1)  # (channels, frames, bins)
         self._in = buffered[:, n_frames * hop :]
-        return np.moveaxis(spectra, -1, 0)  # (frames, channels, bins)
+        return np.swapaxes(spectra, 0, 1)  # (frames, channels, bins)
 
     def synthesise(self, spectra: NDArray[np.complex128]) -> NDArray[np.float64]:
         length, hop = self.config.frame_length, self._hop
@@ -130,8 +136,13 @@ class StreamingStft:
         span = (n_frames - 1) * hop + length
         acc = np.zeros((self._out.shape[0], span))
         acc[:, :length] = self._out
-        for k in range(n_frames):  # overlap-add: one slice-add per frame
-            acc[:, k * hop : k * hop + length] += frames[k]
+        # The hop divides the frame (L = 4 hop): part j of frame k lands on hop slot k + j.
+        # One slice-add per part, the oldest frame's part first, adds in the same order as
+        # one add per frame.
+        parts = length // hop
+        slots = acc.reshape(acc.shape[0], -1, hop)
+        for j in range(parts - 1, -1, -1):
+            slots[:, j : j + n_frames] += np.swapaxes(frames[:, :, j * hop : (j + 1) * hop], 0, 1)
         done = n_frames * hop
         self._out = acc[:, done : done + length].copy()
         if self._out.shape[1] < length:
