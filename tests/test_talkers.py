@@ -279,7 +279,7 @@ def test_two_voices_as_loud_as_each_other_are_left_undecided(tmp_path, capsys):
     assert cli_main(["process", str(take), "-o", str(tmp_path / "o.wav"), "--json"]) == 0
     result = json.loads(capsys.readouterr().out)
     assert result["talkers"]["chosen_by"] == "undecided"
-    assert not any(s["learned_as_noise"] for s in result["talkers"]["sources"])
+    assert not any(s["learned_as_noise"] or s["wanted"] for s in result["talkers"]["sources"])
 
 
 def test_both_talkers_are_found_with_four_microphones():

@@ -212,7 +212,7 @@ def talker_map_figure(
     ax.scatter(features.times_s[loose], delay_ms[loose], s=4, color="0.75",
                label="no clear source")
     for i, src in enumerate(talkers.sources):
-        role = "wanted" if i == talkers.wanted else "noise" if i in talkers.removed else "kept"
+        role = "wanted" if i == talkers.kept else "noise" if i in talkers.removed else "kept"
         colour, name = roles[role]
         mine = owner == i
         bearing = src.bearing_deg(spacing_m)

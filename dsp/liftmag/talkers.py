@@ -150,6 +150,12 @@ class TalkerMap:
         return () if self.chosen_by == "undecided" else self.rivals
 
     @property
+    def kept(self) -> int | None:
+        """Index of the voice kept as the talker, ``None`` when none was (undecided or none
+        found); ``wanted`` still holds the default rule's best guess for the report."""
+        return None if self.chosen_by == "undecided" else self.wanted
+
+    @property
     def competing(self) -> bool:
         """True when another source beside the wanted talker is learned as noise."""
         return bool(self.removed)
@@ -165,7 +171,7 @@ class TalkerMap:
                  "bearing_deg": (None if (b := s.bearing_deg(spacing_m)) is None
                                  else round(b, 1)),
                  "share": round(s.share, 3), "coherence": round(s.coherence, 3),
-                 "wanted": i == self.wanted, "learned_as_noise": i in self.removed}
+                 "wanted": i == self.kept, "learned_as_noise": i in self.removed}
                 for i, s in enumerate(self.sources)
             ],
         }
