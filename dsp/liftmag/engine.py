@@ -54,6 +54,7 @@ from numpy.typing import NDArray
 from scipy.signal import lfilter
 
 from liftmag.estimators import (
+    beam_output,
     diagonally_loaded,
     lifted_affine_weights,
     lifted_nulls_weights,
@@ -190,18 +191,6 @@ def _presence_smoothing_matrix(n_frames: int) -> tuple[NDArray, NDArray]:
     lag = k[:, None] - k[None, :]
     gains = np.where(lag >= 0, 0.1 * 0.9 ** np.maximum(lag, 0), 0.0)
     return gains, 0.9 ** (k + 1.0)
-
-
-def _weighted_sum(h: NDArray, y: NDArray) -> NDArray:
-    """``sum_i h[f, i] y[k, f, i]`` for weights (F, M) and frames (K, F, M): (K, F).
-
-    One multiply-add per channel on (K, F) slices, which lie contiguous in bins: 3-4x
-    cheaper than the same einsum (measured at 48 kHz, M = 2 and 4).
-    """
-    out = h[:, 0] * y[..., 0]
-    for i in range(1, h.shape[-1]):
-        out += h[:, i] * y[..., i]
-    return out
 
 
 def _per_bin_product(a: NDArray, y: NDArray) -> NDArray:
@@ -599,7 +588,7 @@ class Processor:
             self._derived = self._refresh()
         der = self._derived
         if not learning and self._tracking:
-            z = _weighted_sum(np.conj(der.mvdr), y)
+            z = beam_output(der.mvdr, y)
             self._track(y, np.abs(z) ** 2 / np.maximum(der.residual, 1e-300))
         self._frame_index += y.shape[0]
         return der
@@ -655,7 +644,7 @@ class Processor:
             return self._output(y, y[:, :, s.reference_channel], None)
 
         yw = _per_bin_product(der.whitener, y)
-        z = _weighted_sum(np.conj(der.g_white), yw) * der.residual
+        z = beam_output(der.g_white, yw) * der.residual
         mvdr_power = np.abs(z) ** 2
         p_lin = mvdr_power - der.residual
         self.report.bin_frames += p_lin.size
@@ -1095,7 +1084,7 @@ def talker_prior(
         features=features,
     )
     freqs = stft_config(sample_rate_hz, settings.frame_s).frequencies_hz
-    return talkers, spatial_prior(talkers, freqs, features)
+    return talkers, spatial_prior(talkers, freqs)
 
 
 def uses_take_analysis(settings: Settings) -> bool:

@@ -64,6 +64,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
+from liftmag.estimators import beam_output
+
 FEATURE_FRAME_S = 0.064  # short enough that one voice often dominates a frame
 MAX_DELAY_S = 2.0e-3  # time differences searched: +-2 ms, microphones up to about 0.68 m apart
 DELAY_STEP_S = 1.0 / 64000.0  # GCC grid; the peak is refined by parabolic interpolation
@@ -471,9 +473,10 @@ def spatial_prior(
 ) -> SpatialPrior | None:
     """The :class:`SpatialPrior` of a talker map; ``None`` when there is no other source.
 
-    With the take's ``features`` the prior also marks the feature frames that another source
-    holds (:func:`other_frames`).
+    With the take's ``features`` (by default the map's own) the prior also marks the feature
+    frames that another source holds (:func:`other_frames`).
     """
+    features = talkers.features if features is None else features
     if not talkers.competing:
         return None
     delays = np.array([s.delays_s for s in talkers.sources])
@@ -490,15 +493,8 @@ def spatial_prior(
 
 
 def _power_along(steer: NDArray, y: NDArray) -> NDArray:
-    """``|a^H y|^2`` (K, F) for steering ``a`` (F, M) and frames ``y`` (K, F, M).
-
-    One multiply-add per channel: with two to four microphones this is several times cheaper
-    than ``einsum`` over the (K, F, M) layout.
-    """
-    conj = np.conj(steer)
-    proj = y[..., 0] * conj[:, 0]
-    for m in range(1, y.shape[-1]):
-        proj += y[..., m] * conj[:, m]
+    """``|a^H y|^2`` (K, F) for steering ``a`` (F, M) and frames ``y`` (K, F, M)."""
+    proj = beam_output(steer, y)
     return proj.real**2 + proj.imag**2
 
 
